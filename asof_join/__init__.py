@@ -1,0 +1,44 @@
+"""asof_join: point-in-time correct training sets from declared entities and event tables."""
+
+from __future__ import annotations
+
+__version__ = "0.1.0"
+
+from .build import TrainingSet, build  # noqa: E402
+from .errors import (  # noqa: E402
+    AsofJoinError,
+    ColumnNotFoundError,
+    InputError,
+    KeyTypeMismatchError,
+    NullTimeError,
+    SpecError,
+    TimeTypeError,
+    UnknownTableError,
+    UnreadableInputError,
+    UnsupportedByEngineError,
+)
+from .spec import Entity, EventTable, Latest, Trailing, TrainingSetSpec  # noqa: E402
+from .spec_file import load_spec, spec_json_schema  # noqa: E402
+
+__all__ = [
+    "AsofJoinError",
+    "ColumnNotFoundError",
+    "Entity",
+    "EventTable",
+    "InputError",
+    "KeyTypeMismatchError",
+    "Latest",
+    "NullTimeError",
+    "SpecError",
+    "TimeTypeError",
+    "Trailing",
+    "TrainingSet",
+    "TrainingSetSpec",
+    "UnknownTableError",
+    "UnreadableInputError",
+    "UnsupportedByEngineError",
+    "__version__",
+    "build",
+    "load_spec",
+    "spec_json_schema",
+]

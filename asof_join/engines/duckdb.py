@@ -1,0 +1,260 @@
+"""The DuckDB engine: binds frames and files, runs the row checks, renders and runs the plan."""
+
+from __future__ import annotations
+
+import glob
+import json
+import os
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+import duckdb
+import pyarrow as pa
+
+from ..errors import InputError, NullTimeError, UnreadableInputError
+from ..plan import Plan
+from .render import SqlRenderer
+from .sql import literal, quote_ident
+
+
+class DuckDBRenderer(SqlRenderer):
+    """DuckDB has ASOF JOIN, QUALIFY, struct_pack and ICU time zones: the base syntax."""
+
+    SUPPORTS_ASOF_JOIN = True
+    SUPPORTS_QUALIFY = True
+
+
+_PARQUET = (".parquet", ".pq", ".parq")
+_CSV = (".csv", ".tsv", ".txt", ".csv.gz", ".tsv.gz")
+
+
+class DuckDBEngine:
+    """Runs plans in one DuckDB connection (in-process; spills to temp_dir under memory_limit)."""
+
+    name = "duckdb"
+
+    def __init__(
+        self,
+        *,
+        memory_limit: str | None = None,
+        temp_dir: str | os.PathLike[str] | None = None,
+        threads: int | None = None,
+        connection: duckdb.DuckDBPyConnection | None = None,
+    ) -> None:
+        self.con = connection if connection is not None else duckdb.connect()
+        self.fetch("SET TimeZone = 'UTC'")
+        self.fetch("SET autoinstall_known_extensions = false")
+        self.fetch("SET autoload_known_extensions = false")
+        if memory_limit is not None:
+            self.fetch(f"SET memory_limit = {literal(str(memory_limit))}")
+        if temp_dir is not None:
+            self.fetch(f"SET temp_directory = {literal(str(temp_dir))}")
+        if threads is not None:
+            self.fetch(f"SET threads = {int(threads)}")
+        self.sources: dict[str, str] = {}
+        self.arrow_schemas: dict[str, pa.Schema] = {}
+        self._keep: list[object] = []
+
+    # -- binding ---------------------------------------------------------------------------
+
+    def bind(self, tables: Mapping[str, object]) -> dict[str, pa.Schema]:
+        """Register every table's data under an internal name; return their Arrow schemas."""
+        schemas: dict[str, pa.Schema] = {}
+        for i, (name, obj) in enumerate(tables.items()):
+            view = f"aj_src_{i}"
+            original = self._register(name, view, obj)
+            self.sources[name] = view
+            rel = self.con.sql(f"SELECT * FROM {quote_ident(view)} LIMIT 0")
+            schema = rel.to_arrow_table().schema
+            schemas[name] = schema
+            self.arrow_schemas[name] = original if original is not None else schema
+        return schemas
+
+    def _register(self, name: str, view: str, obj: object) -> pa.Schema | None:
+        if isinstance(obj, (str, os.PathLike)):
+            self._register_path(name, view, os.fspath(obj))
+            return None
+        module = type(obj).__module__.split(".")[0]
+        if module == "pandas":
+            import pandas as pd
+
+            assert isinstance(obj, pd.DataFrame)
+            table = pa.Table.from_pandas(obj, preserve_index=False)
+            self.con.register(view, table)
+            self._keep.append(table)
+            return table.schema
+        if module == "polars":
+            import polars as pl
+
+            frame = obj.collect() if isinstance(obj, pl.LazyFrame) else obj
+            assert isinstance(frame, pl.DataFrame)
+            table = frame.to_arrow()
+            self.con.register(view, table)
+            self._keep.append(table)
+            return table.schema
+        if isinstance(obj, pa.Table):
+            self.con.register(view, obj)
+            return obj.schema
+        if isinstance(obj, pa.RecordBatchReader):
+            table = obj.read_all()
+            self.con.register(view, table)
+            self._keep.append(table)
+            return table.schema
+        if isinstance(obj, duckdb.DuckDBPyRelation):
+            # a relation belongs to its own connection: bring it over through Arrow
+            table = obj.to_arrow_table()
+            self.con.register(view, table)
+            self._keep.append(table)
+            return table.schema
+        msg = (
+            f"data for table {name!r} is a {type(obj).__name__}; pass a pandas, polars or "
+            "pyarrow frame, a DuckDB relation, or a Parquet/CSV path or glob"
+        )
+        err = InputError(msg)
+        err.table = name
+        raise err
+
+    def _register_path(self, name: str, view: str, path: str) -> None:
+        if "://" not in path:
+            matches = glob.glob(path) if glob.has_magic(path) else [path]
+            if not matches or not all(Path(m).is_file() for m in matches):
+                missing = path if not matches else next(m for m in matches if not Path(m).is_file())
+                msg = (
+                    f"table {name!r}: cannot read {missing!r} (no such file or no match for the "
+                    "glob); fix the path in data= or the spec's path:"
+                )
+                err = UnreadableInputError(msg)
+                err.table, err.value = name, path
+                raise err
+        lower = path.lower()
+        try:
+            if lower.endswith(_CSV):
+                rel = self.con.read_csv(path)
+            else:
+                rel = self.con.read_parquet(path)
+            rel.create_view(view)
+        except duckdb.Error as exc:
+            first = str(exc).splitlines()[0]
+            msg = (
+                f"table {name!r}: cannot read {path!r} as "
+                f"{'CSV' if lower.endswith(_CSV) else 'Parquet'}: {first}; check the file"
+            )
+            err = UnreadableInputError(msg)
+            err.table, err.value = name, path
+            raise err from None
+
+    def fetch(self, sql: str, params: dict[str, object] | None = None) -> list[tuple[Any, ...]]:
+        """Run a statement to completion and return its rows."""
+        return self.con.execute(sql, params or {}).fetchall()
+
+    # -- checks that scan rows -------------------------------------------------------------
+
+    def check_null_times(self, plan: Plan) -> None:
+        """Fail on null times the declaration does not allow: count and first positions."""
+        for check in plan.checks:
+            src = quote_ident(self.sources[check.table])
+            col = quote_ident(check.column)
+            nulls = int(self.fetch(f"SELECT count(*) - count({col}) FROM {src}")[0][0])
+            if nulls == 0:
+                continue
+            first = [
+                int(r[0])
+                for r in self.fetch(
+                    f"SELECT pos FROM (SELECT row_number() OVER () - 1 AS pos, {col} AS c "
+                    f"FROM {src}) WHERE c IS NULL ORDER BY pos LIMIT 5"
+                )
+            ]
+            fix = (
+                "set null_times='keep' on the label table (those rows get null features) or "
+                "drop them"
+                if check.role == "label time"
+                else "set null_times='skip' on that table to ignore such rows, or fill them"
+            )
+            msg = (
+                f"table {check.table!r} column {check.column!r} ({check.role}) has {nulls} null "
+                f"value(s), first at 0-based row(s) {first}; {fix}"
+            )
+            err = NullTimeError(msg)
+            err.table, err.column, err.value = check.table, check.column, nulls
+            raise err
+
+    # -- rendering and running -------------------------------------------------------------
+
+    def render(self, plan: Plan) -> tuple[str, dict[str, object]]:
+        renderer = DuckDBRenderer(plan, self.sources)
+        sql = renderer.render()
+        return sql, dict(renderer.params.values)
+
+    def run(self, plan: Plan) -> DuckDBResult:
+        sql, params = self.render(plan)
+        label_schema = self.arrow_schemas[plan.labels.table]
+        return DuckDBResult(self, sql, params, label_schema, plan)
+
+
+class DuckDBResult:
+    """A lazy training set in DuckDB: executed on first read, streamed when written."""
+
+    def __init__(
+        self,
+        engine: DuckDBEngine,
+        sql: str,
+        params: dict[str, object],
+        label_schema: pa.Schema,
+        plan: Plan,
+    ) -> None:
+        self.engine = engine
+        self.sql = sql
+        self.params = params
+        self.label_schema = label_schema
+        self.plan = plan
+        self._table: pa.Table | None = None
+
+    def relation(self) -> duckdb.DuckDBPyRelation:
+        return self.engine.con.sql(self.sql, params=self.params)
+
+    def arrow(self) -> pa.Table:
+        if self._table is None:
+            table = self.relation().to_arrow_table()
+            self._table = _restore_label_types(table, self.label_schema)
+        return self._table
+
+    def count(self) -> int:
+        src = quote_ident(self.engine.sources[self.plan.labels.table])
+        return int(self.engine.fetch(f"SELECT count(*) FROM {src}")[0][0])
+
+    def write_parquet(self, path: str, metadata: Mapping[str, str]) -> None:
+        kv = ", ".join(f"{literal(k)}: {literal(v)}" for k, v in metadata.items())
+        self.engine.fetch(
+            f"COPY ({self.sql}) TO {literal(path)} (FORMAT parquet, KV_METADATA {{{kv}}})",
+            self.params,
+        )
+
+    def write_csv(self, path: str) -> None:
+        self.engine.fetch(
+            f"COPY ({self.sql}) TO {literal(path)} (FORMAT csv, HEADER true)", self.params
+        )
+
+
+def _restore_label_types(table: pa.Table, label_schema: pa.Schema) -> pa.Table:
+    """Cast label columns back to the types they came in with (e.g. a time zone's name)."""
+    columns = list(table.columns)
+    changed = False
+    for i, field in enumerate(label_schema):
+        if i >= len(columns) or table.schema.field(i).name != field.name:
+            break
+        if columns[i].type != field.type:
+            try:
+                columns[i] = columns[i].cast(field.type)
+                changed = True
+            except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+                continue
+    if not changed:
+        return table
+    names = table.schema.names
+    return pa.Table.from_arrays(columns, names=names, metadata=table.schema.metadata)
+
+
+def metadata_json(value: Any) -> str:
+    """JSON text for Parquet key-value metadata."""
+    return json.dumps(value, sort_keys=True)

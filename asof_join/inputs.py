@@ -1,0 +1,198 @@
+"""Checks bound data against the spec using Arrow schemas only: columns, key types, time types."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+
+import pyarrow as pa
+
+from .errors import (
+    ColumnNotFoundError,
+    KeyTypeMismatchError,
+    SpecError,
+    TimeTypeError,
+    UnknownTableError,
+)
+from .plan import TableTimes, TimeKind, TimeRef
+from .spec import Latest, Trailing, TrainingSetSpec
+
+
+@dataclass(frozen=True)
+class CheckedInputs:
+    """What the planner needs to know about the data."""
+
+    times: dict[str, TableTimes]
+    label_columns: tuple[str, ...]
+    aware: bool
+
+
+def check_bindings(spec: TrainingSetSpec, data: Mapping[str, object] | None) -> None:
+    """Every declared table has data (or a path); data= names nothing undeclared."""
+    tables = spec.tables()
+    data = data or {}
+    unknown = [k for k in data if k not in tables]
+    if unknown:
+        msg = (
+            f"data= binds {unknown}, which the spec does not declare; declared tables: "
+            f"{list(tables)}. Fix the name in data= or add the table to the spec"
+        )
+        err = UnknownTableError(msg)
+        err.table = unknown[0]
+        raise err
+    missing = [n for n, t in tables.items() if n not in data and t.path is None]
+    if missing:
+        msg = (
+            f"no data for table(s) {missing}: pass data={{{missing[0]!r}: frame_or_path}} to "
+            "build(), or set path: on the table in the spec"
+        )
+        err = UnknownTableError(msg)
+        err.table = missing[0]
+        raise err
+
+
+def _time_kind(typ: pa.DataType) -> TimeKind | None:
+    if pa.types.is_timestamp(typ):
+        return TimeKind.AWARE if typ.tz is not None else TimeKind.NAIVE
+    if pa.types.is_date(typ):
+        return TimeKind.DATE
+    return None
+
+
+def _key_family(typ: pa.DataType) -> str:
+    if pa.types.is_dictionary(typ):
+        typ = typ.value_type
+    if pa.types.is_integer(typ) or pa.types.is_floating(typ) or pa.types.is_decimal(typ):
+        return "number"  # widths may differ; pandas turns nullable integers into floats
+    if pa.types.is_string(typ) or pa.types.is_large_string(typ) or pa.types.is_string_view(typ):
+        return "string"
+    return str(typ)
+
+
+def _require(schema: pa.Schema, table: str, column: str, role: str, fix: str) -> pa.DataType:
+    if column not in schema.names:
+        raise ColumnNotFoundError.missing(table, column, role, schema.names, fix)
+    return schema.field(column).type
+
+
+def check_inputs(
+    spec: TrainingSetSpec, schemas: Mapping[str, pa.Schema], *, provenance: bool = False
+) -> CheckedInputs:
+    """Check columns, key and time types; decide how each time column is normalized."""
+    tables = spec.tables()
+    kinds: dict[str, tuple[TimeKind, TimeKind | None]] = {}
+    for name, table in tables.items():
+        schema = schemas[name]
+        vt = _require(schema, name, table.time, "time", "Fix time= or the data.")
+        vk = _time_kind(vt)
+        if vk is None:
+            msg = (
+                f"table {name!r} column {table.time!r} (its time) has type {vt}, not a timestamp "
+                "or date; convert it (e.g. pandas.to_datetime) or point time= at a timestamp"
+            )
+            err = TimeTypeError(msg)
+            err.table, err.column = name, table.time
+            raise err
+        kk: TimeKind | None = None
+        if table.known_at is not None:
+            kt = _require(schema, name, table.known_at, "known_at", "Fix known_at= or the data.")
+            kk = _time_kind(kt)
+            if kk is None:
+                msg = (
+                    f"table {name!r} column {table.known_at!r} (its known_at) has type {kt}, not "
+                    "a timestamp or date; convert it or point known_at= at a timestamp"
+                )
+                err = TimeTypeError(msg)
+                err.table, err.column = name, table.known_at
+                raise err
+        for ref in table.entities:
+            for col in ref.columns:
+                _require(schema, name, col, f"key of entity {ref.entity!r}", "Fix entities=.")
+    label_schema = schemas[spec.labels.name]
+    for feat in spec.features:
+        name = feat.table.name
+        schema = schemas[name]
+        if isinstance(feat, Latest):
+            for col in feat.columns:
+                _require(schema, name, col, "feature column", "Fix the feature's columns.")
+        elif isinstance(feat, Trailing) and feat.column is not None:
+            _require(schema, name, feat.column, "feature column", "Fix the feature's column.")
+        lkeys, tkeys = spec.join_keys(feat)
+        for lcol, tcol in zip(lkeys, tkeys):
+            ltype = _require(
+                label_schema,
+                spec.labels.name,
+                lcol,
+                f"join key for table {name!r}",
+                "Map the entity's columns on the label table: entities={'<entity>': [...]}.",
+            )
+            ttype = schema.field(tcol).type
+            if _key_family(ltype) != _key_family(ttype):
+                msg = (
+                    f"key type mismatch: label table {spec.labels.name!r} column {lcol!r} is "
+                    f"{ltype} but table {name!r} column {tcol!r} is {ttype}; cast one side so "
+                    "both are integers or both are strings"
+                )
+                err = KeyTypeMismatchError(msg)
+                err.table, err.column = name, tcol
+                raise err
+    outputs = spec.output_columns()
+    if provenance:
+        outputs = outputs + [
+            f"{n}{s}"
+            for f in spec.features
+            if isinstance(f, Latest)
+            for n in f.output_names()
+            for s in ("__time", "__known_at")
+        ]
+    clash = [o for o in outputs if o in label_schema.names]
+    if clash:
+        msg = (
+            f"feature output {clash[0]!r} has the name of a column of the label table "
+            f"{spec.labels.name!r}; set name= or prefix= on that feature"
+        )
+        raise SpecError(msg)
+
+    for name, (vk, kk) in (
+        (n, (_time_kind(schemas[n].field(t.time).type), None)) for n, t in tables.items()
+    ):
+        assert vk is not None
+        kinds[name] = (vk, kk)
+    for name, table in tables.items():
+        if table.known_at is not None:
+            kinds[name] = (kinds[name][0], _time_kind(schemas[name].field(table.known_at).type))
+
+    aware_cols = [
+        (n, c)
+        for n, t in tables.items()
+        for c, k in ((t.time, kinds[n][0]), (t.known_at, kinds[n][1]))
+        if c is not None and k == TimeKind.AWARE
+    ]
+    naive_cols = [
+        (n, c)
+        for n, t in tables.items()
+        for c, k in ((t.time, kinds[n][0]), (t.known_at, kinds[n][1]))
+        if c is not None and k in (TimeKind.NAIVE, TimeKind.DATE)
+    ]
+    aware = bool(aware_cols)
+    if aware_cols and naive_cols and spec.timezone is None:
+        (an, ac), (nn, nc) = aware_cols[0], naive_cols[0]
+        msg = (
+            f"time zones mixed: table {an!r} column {ac!r} is timezone-aware but table {nn!r} "
+            f"column {nc!r} is naive; set timezone='<IANA zone>' on the spec to read naive "
+            "times in that zone, or make both the same kind"
+        )
+        err = TimeTypeError(msg)
+        err.table, err.column = nn, nc
+        raise err
+    zone = spec.timezone if aware else None
+    times = {
+        name: TableTimes(
+            valid=TimeRef(table.time, kinds[name][0], zone),
+            known=None
+            if table.known_at is None
+            else TimeRef(table.known_at, kinds[name][1] or TimeKind.NAIVE, zone),
+        )
+        for name, table in tables.items()
+    }
+    return CheckedInputs(times=times, label_columns=tuple(label_schema.names), aware=aware)

@@ -17,8 +17,10 @@ from .errors import (  # noqa: E402
     UnreadableInputError,
     UnsupportedByEngineError,
 )
+from .ranking import sample_negatives
 from .spec import Entity, EventTable, Latest, Trailing, TrainingSetSpec  # noqa: E402
 from .spec_file import load_spec, spec_json_schema  # noqa: E402
+from .splits import split_by_time
 
 __all__ = [
     "AsofJoinError",
@@ -40,5 +42,7 @@ __all__ = [
     "__version__",
     "build",
     "load_spec",
+    "sample_negatives",
     "spec_json_schema",
+    "split_by_time",
 ]

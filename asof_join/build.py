@@ -165,6 +165,7 @@ def build(
         checked.label_columns,
         provenance=provenance,
         aware=checked.aware,
+        integer_columns=checked.integer_columns,
     )
     runner.check_null_times(plan)
     return TrainingSet(spec, plan, runner, runner.run(plan))

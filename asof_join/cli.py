@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 import tempfile
 import time
@@ -23,6 +24,7 @@ if TYPE_CHECKING:
 
 #: Exit codes. 1 is for audit findings at or above --fail-on.
 EXIT_OK, EXIT_FINDINGS, EXIT_ERROR = 0, 1, 2
+EXIT_BROKEN_PIPE = 128 + 13  # what a shell reports for a process ended by SIGPIPE
 _OUTPUT_WRITERS = {".parquet": "write_parquet", ".csv": "write_csv"}
 
 
@@ -35,6 +37,11 @@ def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     try:
         code: int = args.run(args)
+    except BrokenPipeError:
+        # The reader went away (`asof-join schema | head`): stop quietly, as a shell would on
+        # SIGPIPE; point stdout at devnull so the flush at exit does not fail again.
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return EXIT_BROKEN_PIPE
     except (aj.AsofJoinError, UsageError, OSError) as err:
         print(f"asof-join: error: {_one_line(err)}", file=sys.stderr)
         return EXIT_ERROR
@@ -60,7 +67,9 @@ def _parser() -> argparse.ArgumentParser:
     build.add_argument("--threads", type=int, metavar="N", help="DuckDB threads")
     build.set_defaults(run=_build)
 
-    sql = sub.add_parser("sql", help="print the SQL a spec compiles to")
+    sql = sub.add_parser(
+        "sql", help="print the SQL a spec compiles to (reads the tables' schemas, not their rows)"
+    )
     sql.add_argument("spec", metavar="SPEC", help="YAML or JSON spec file")
     sql.add_argument("--engine", choices=["duckdb", "spark"], default="duckdb")
     _add_data_option(sql)
@@ -116,7 +125,10 @@ def _build(args: argparse.Namespace) -> int:
 
 def _sql(args: argparse.Namespace) -> int:
     spec = aj.load_spec(args.spec)
-    print(aj.compile_sql(spec, data=_bindings(spec, args.data), engine=args.engine))
+    spark = _spark_session() if args.engine == "spark" else None
+    # build() is lazy: it reads schemas and checks inputs; nothing runs until the result is read.
+    train = aj.build(spec, data=_bindings(spec, args.data), engine=args.engine, spark=spark)
+    print(train.sql)
     return EXIT_OK
 
 
@@ -156,7 +168,7 @@ def _demo(args: argparse.Namespace) -> int:
 
         print(_demo_summary(spec, sizes, train, leaks, made=made, built=built, seed=args.seed))
         kept = f"{folder} (with train.parquet)" if args.dir is not None else "a temp dir, removed"
-        print(f"data: {kept}; spec: asof_join/specs/nursery.yaml")
+        print(f"\nspec: asof_join/specs/nursery.yaml\ndata: {kept}")
     return EXIT_OK
 
 
@@ -170,35 +182,45 @@ def _demo_summary(
     built: float,
     seed: int,
 ) -> str:
-    """The screenful `asof-join demo` prints."""
+    """The screenful `asof-join demo` prints (rows, match rates, naive-join leaks, timings)."""
+    import pyarrow as pa
     import pyarrow.compute as pc
 
     rows = train.num_rows
-    inputs = ", ".join(f"{name} {n:,}" for name, n in sizes.items() if name in spec.tables())
-    returned = pc.mean(train.column("returned").cast("int8")).as_py() if rows else None
+    labels = spec.labels.name
+    others = ", ".join(
+        f"{name} {n:,}" for name, n in sizes.items() if name in spec.tables() and name != labels
+    )
+    returned = pc.mean(train.column("returned").cast("int8")).as_py()
     lines = [
-        f"asof-join demo: an invented mail-order plant nursery (seed {seed})",
-        f"  data    {inputs}  [{made:.1f}s]",
-        f"  built   {rows:,} rows x {train.num_columns} columns  [{built:.1f}s]"
-        + (f"; {returned:.1%} of orders returned" if returned is not None else ""),
+        f"asof-join demo: an invented mail-order plant nursery, 2023-2024 (seed {seed})",
+        f"  labels  {labels} {sizes[labels]:,}, {returned:.1%} returned; data made in {made:.1f}s",
+        f"  tables  {others}",
+        f"  built   {rows:,} rows x {train.num_columns} columns in {built:.1f}s",
         "",
-        f"  {'feature':<14} {'non-null':>8}   {'naive join: from the future':>28}   "
-        f"{'differs':>16}",
+        f"  {'feature':<14}{'non-null':>9}{'non-zero':>10}   {'naive join: from the future':>28}"
+        f"   {'naive join: differs':>20}",
     ]
     by_name = {leak.feature: leak for leak in leaks}
     for name in spec.output_columns():
         column = train.column(name)
-        share = 1 - column.null_count / rows if rows else 0.0
+        share = f"{1 - column.null_count / rows:.1%}"
+        nonzero = "-"
+        if pa.types.is_integer(column.type) or pa.types.is_floating(column.type):
+            nonzero = f"{pc.sum(pc.not_equal(column, 0)).as_py() / rows:.1%}"
         leak = by_name.get(name)
-        future = "-" if leak is None else f"{leak.from_future:,} ({leak.from_future / rows:.0%})"
-        differs = "-" if leak is None else f"{leak.differs:,} ({leak.differs / rows:.0%})"
-        lines.append(f"  {name:<14} {share:>8.1%}   {future:>28}   {differs:>16}")
+        future = differs = "-"
+        if leak is not None:
+            future = f"{leak.from_future:,} ({leak.from_future / rows:.0%})"
+            differs = f"{leak.differs:,} ({leak.differs / rows:.0%})"
+        lines.append(f"  {name:<14}{share:>9}{nonzero:>10}   {future:>28}   {differs:>20}")
     total = sum(leak.from_future for leak in leaks)
     lines += [
         "",
-        f"A join on the key alone (each key's newest row, time ignored) would have filled "
-        f"{total:,}",
-        f"of {rows * len(leaks):,} latest-feature values from rows valid at or after the order.",
+        "A join on the key alone (each key's newest row, time ignored) would have filled "
+        f"{total:,} of",
+        f"the {rows * len(leaks):,} latest-feature values above from rows valid at or after "
+        "the order.",
     ]
     return "\n".join(lines)
 
@@ -216,6 +238,16 @@ def _bindings(spec: TrainingSetSpec, overrides: Sequence[str]) -> dict[str, str]
             raise UsageError(msg)
         data[name] = path
     return data
+
+
+def _spark_session() -> object:
+    """The active Spark session, else a local one."""
+    try:
+        from pyspark.sql import SparkSession
+    except ImportError:
+        msg = "--engine spark needs pyspark: pip install 'asof_join[spark]'"
+        raise UsageError(msg) from None
+    return SparkSession.builder.master("local[1]").appName("asof-join").getOrCreate()
 
 
 def _one_line(err: BaseException) -> str:

@@ -63,6 +63,8 @@ def make_demo_data(n_orders: int = 200_000, seed: int = 0) -> dict[str, pa.Table
         >>> sorted(tables)
         ['customers', 'orders', 'prices', 'profiles', 'returns', 'stock', 'views']
     """
+    import pyarrow as pa
+
     if n_orders < 1:
         msg = f"n_orders must be at least 1, got {n_orders}"
         raise ValueError(msg)
@@ -97,6 +99,8 @@ def make_demo_data(n_orders: int = 200_000, seed: int = 0) -> dict[str, pa.Table
     order = np.argsort(when, kind="stable")
     cust, when = cust[order], when[order]
     plant = rng.choice(n_plants, size=n_orders, p=popularity)
+    # Every order finds a price, a profile and a stock count below: each plant's first price and
+    # count predate START, and each customer's first profile is stamped when they joined.
     quantity = np.minimum(1 + rng.poisson(0.5, n_orders), 6)
     price_row = _asof_positions(prices["plant"], prices["time"], plant, when)
     price = prices["price"][price_row]
@@ -121,8 +125,6 @@ def make_demo_data(n_orders: int = 200_000, seed: int = 0) -> dict[str, pa.Table
     returned_at = when + _randint(rng, 2 * _DAY, 30 * _DAY, n_orders)
     ret = np.flatnonzero(returned)
     ret = ret[np.argsort(returned_at[ret], kind="stable")]
-
-    import pyarrow as pa
 
     order_id = np.arange(100_001, 100_001 + n_orders, dtype=np.int64)
     customer_id = np.arange(1, n_customers + 1, dtype=np.int64)
@@ -281,8 +283,7 @@ def naive_leak_count(
                 f"SELECT count(*) FILTER (WHERE n._aj_t >= l.{label_time}), {differs} "
                 f"FROM _aj_train AS l LEFT JOIN n ON {on}"
             )
-            row = con.execute(sql).fetchone()
-            assert row is not None  # an aggregate without GROUP BY returns one row
+            (row,) = con.execute(sql).fetchall()  # an aggregate without GROUP BY: one row
             leaks += [
                 NaiveLeak(name, int(row[0]), int(row[1 + j])) for j, name in enumerate(outputs)
             ]
@@ -343,7 +344,8 @@ def _profiles(
     loaded with a wrong tier and corrected by a later row with the same ``updated_at``).
     """
     n_customers = len(joined)
-    updates = 1 + rng.poisson(2.0, n_customers)
+    years = (_T1 - joined) / (365 * _DAY)
+    updates = 1 + rng.poisson(2.0 * years)  # about two changes a year of membership
     cust = np.repeat(np.arange(n_customers), updates)
     first = _starts_mask(updates)
     m = len(cust)
@@ -388,7 +390,7 @@ def _order_times(rng: np.random.Generator, earliest: np.ndarray) -> np.ndarray:
     """Order times with a spring peak and an autumn bump, none before the customer joined."""
     n_days = (_T1 - _T0) // _DAY
     doy = (np.arange(n_days) % 365).astype(float)
-    season = 1.0 + 1.2 * np.exp(-(((doy - 120.0) / 35.0) ** 2))
+    season = 1.0 + 2.0 * np.exp(-(((doy - 120.0) / 35.0) ** 2))
     season += 0.4 * np.exp(-(((doy - 270.0) / 25.0) ** 2))
     season /= season.sum()
     when = np.full(len(earliest), -1, dtype=np.int64)
@@ -483,7 +485,8 @@ def _group_cumsum(values: np.ndarray, first: np.ndarray) -> np.ndarray:
     """Running sum of ``values`` restarting at each True of ``first`` (the first row is True)."""
     total = np.cumsum(values)
     start = np.maximum.accumulate(np.where(first, np.arange(len(values)), 0))
-    return total - total[start] + values[start]
+    out: np.ndarray = total - total[start] + values[start]
+    return out
 
 
 def _randint(rng: np.random.Generator, lo: int, hi: int, size: int) -> np.ndarray:
@@ -492,7 +495,8 @@ def _randint(rng: np.random.Generator, lo: int, hi: int, size: int) -> np.ndarra
 
 def _time_of_day(rng: np.random.Generator, size: int) -> np.ndarray:
     hour = rng.choice(24, size=size, p=_HOURLY)
-    return hour * _HOUR + _randint(rng, 0, _HOUR, size)
+    out: np.ndarray = hour * _HOUR + _randint(rng, 0, _HOUR, size)
+    return out
 
 
 def _ts(micros: np.ndarray) -> np.ndarray:

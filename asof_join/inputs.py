@@ -25,6 +25,7 @@ class CheckedInputs:
     times: dict[str, TableTimes]
     label_columns: tuple[str, ...]
     aware: bool
+    integer_columns: frozenset[tuple[str, str]] = frozenset()
 
 
 def check_bindings(spec: TrainingSetSpec, data: Mapping[str, object] | None) -> None:
@@ -195,4 +196,15 @@ def check_inputs(
         )
         for name, table in tables.items()
     }
-    return CheckedInputs(times=times, label_columns=tuple(label_schema.names), aware=aware)
+    integer_columns = frozenset(
+        (name, f.name)
+        for name in tables
+        for f in schemas[name]
+        if pa.types.is_integer(f.type) or pa.types.is_boolean(f.type)
+    )
+    return CheckedInputs(
+        times=times,
+        label_columns=tuple(label_schema.names),
+        aware=aware,
+        integer_columns=integer_columns,
+    )

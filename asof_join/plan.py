@@ -56,7 +56,9 @@ class LatestValue:
 
     column: str
     output: str
+    #: null unless t - valid time <= max_age (a trailing ``last`` over w uses w - 1 microsecond)
     max_age_us: int | None
+    provenance: bool = False
 
 
 class Reduction(str, enum.Enum):
@@ -86,7 +88,6 @@ class LatestLookup:
     skip_null_times: bool
     reduction: Reduction
     values: tuple[LatestValue, ...]
-    provenance: bool
 
 
 @dataclass(frozen=True)
@@ -97,6 +98,21 @@ class TrailingValue:
     agg: str
     over_us: int
     output: str
+    integer: bool = False  #: the column holds integers: a sum stays an integer
+
+
+class Route(str, enum.Enum):
+    """How trailing aggregates are computed; both are linear-logarithmic in rows + labels."""
+
+    #: known time = valid time + fixed delay: visible rows in the window are the rows whose valid
+    #: time lies in (t - over, t - delay), one contiguous range: a RANGE window frame over labels
+    #: and rows sorted together reads every aggregate.
+    FRAME = "frame"
+    #: known time from a column: a row counts for labels in the interval (known, valid + over)
+    #: (or [known, ...) when inclusive). Additive aggregates are prefix sums of enter and exit
+    #: events; count_distinct merges each value's intervals first; min and max use a dyadic
+    #: decomposition of each interval over the labels' ranks.
+    SWEEP = "sweep"
 
 
 @dataclass(frozen=True)
@@ -113,8 +129,7 @@ class TrailingLookup:
     inclusive: bool
     skip_null_times: bool
     values: tuple[TrailingValue, ...]
-    #: the table is the label table itself: the labelled row never counts
-    self_table: bool
+    route: Route
 
 
 Lookup = LatestLookup | TrailingLookup
@@ -160,6 +175,7 @@ def make_plan(
     *,
     provenance: bool = False,
     aware: bool = False,
+    integer_columns: frozenset[tuple[str, str]] = frozenset(),
 ) -> Plan:
     """Compile a spec (checked against the inputs) into the neutral plan."""
     labels = spec.labels
@@ -185,16 +201,24 @@ def make_plan(
             if k not in label_keys_used:
                 label_keys_used.append(k)
         group = (feat.table.name, lkeys, tkeys)
+        if isinstance(feat, Trailing) and feat.agg == "last":
+            # `last` within (t - over, t] is the latest visible row when it is newer than
+            # t - over: a latest lookup with max_age = over - 1 microsecond (times are integers
+            # in microseconds), sharing the table's timeline with its latest features.
+            assert feat.column is not None
+            step = _latest_step(latest_by_key, meta, pending_latest, group)
+            values = pending_latest[step]
+            values.append(
+                LatestValue(feat.column, feat.output_names()[0], to_micros(feat.over) - 1)
+            )
+            outputs.append(OutputColumn(feat.output_names()[0], step, "value", len(values) - 1))
+            continue
         if isinstance(feat, Latest):
-            if group not in latest_by_key:
-                latest_by_key[group] = len(meta)
-                meta[len(meta)] = (feat.table.name, lkeys, tkeys, "latest")
-                pending_latest[latest_by_key[group]] = []
-            step = latest_by_key[group]
+            step = _latest_step(latest_by_key, meta, pending_latest, group)
             values = pending_latest[step]
             max_age = None if feat.max_age is None else to_micros(feat.max_age)
             for col, out in zip(feat.columns, feat.output_names()):
-                values.append(LatestValue(col, out, max_age))
+                values.append(LatestValue(col, out, max_age, provenance))
                 idx = len(values) - 1
                 outputs.append(OutputColumn(out, step, "value", idx))
                 if provenance:
@@ -209,7 +233,10 @@ def make_plan(
             step = trailing_by_key[group]
             tvalues = pending_trailing[step]
             out = feat.output_names()[0]
-            tvalues.append(TrailingValue(feat.column, feat.agg, to_micros(feat.over), out))
+            integer = (feat.table.name, feat.column or "") in integer_columns
+            tvalues.append(
+                TrailingValue(feat.column, feat.agg, to_micros(feat.over), out, integer)
+            )
             outputs.append(OutputColumn(out, step, "value", len(tvalues) - 1))
 
     tables = spec.tables()
@@ -233,7 +260,6 @@ def make_plan(
                     **common,
                     reduction=Reduction.KNOWN if tt.known is not None else Reduction.VALID,
                     values=tuple(pending_latest[step]),
-                    provenance=provenance,
                 )
             )
         else:
@@ -241,7 +267,7 @@ def make_plan(
                 TrailingLookup(
                     **common,
                     values=tuple(pending_trailing[step]),
-                    self_table=name == labels.name,
+                    route=Route.SWEEP if tt.known is not None else Route.FRAME,
                 )
             )
 
@@ -257,3 +283,17 @@ def make_plan(
         fingerprint=spec.fingerprint(),
         tables=tuple(tables),
     )
+
+
+def _latest_step(
+    latest_by_key: dict[tuple[str, tuple[str, ...], tuple[str, ...]], int],
+    meta: dict[int, tuple[str, tuple[str, ...], tuple[str, ...], str]],
+    pending: dict[int, list[LatestValue]],
+    group: tuple[str, tuple[str, ...], tuple[str, ...]],
+) -> int:
+    """The latest lookup for (table, keys), created on first use."""
+    if group not in latest_by_key:
+        latest_by_key[group] = len(meta)
+        meta[len(meta)] = (*group, "latest")
+        pending[latest_by_key[group]] = []
+    return latest_by_key[group]

@@ -209,6 +209,11 @@ class _Feature(_Model):
     name: str | None = None
     prefix: str = ""
 
+    @field_validator("entity", mode="before")
+    @classmethod
+    def _entity(cls, v: Any) -> Any:
+        return v.name if isinstance(v, Entity) else v
+
     def output_names(self) -> list[str]:  # pragma: no cover - overridden
         raise NotImplementedError
 
@@ -330,6 +335,11 @@ class TrainingSetSpec(_Model):
 
     def model_post_init(self, context: Any, /) -> None:
         problems: list[str] = []
+        if self.labels.null_times == "skip":
+            problems.append(
+                f"label table {self.labels.name!r} sets null_times='skip', but label rows are "
+                "never dropped; use null_times='keep' (null features) or filter the labels"
+            )
         tables: dict[str, EventTable] = {self.labels.name: self.labels}
         for feat in self.features:
             seen = tables.get(feat.table.name)

@@ -161,6 +161,7 @@ def _verify(
         return loaded[key]
 
     for letter, (_, keys) in SCENARIOS.items():
+        loaded.clear()  # one scenario's outputs in memory at a time
         ref_candidates = [k for k in keys if METHODS[k].role == "hand"]
         if letter == "d":
             ref_candidates = ["a:hand_sql", "a:build"]
@@ -250,6 +251,8 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
                     if rep == 0 and METHODS[key].role != "floor":
                         p["dump"] = str(work / f"{key.replace(':', '_')}.parquet")
                     p["out_file"] = str(work / f"out_{key.replace(':', '_')}.parquet")
+                    if "temp_dir" in p:
+                        Path(p["temp_dir"]).mkdir(parents=True, exist_ok=True)
                     r = _run_child(p, args.timeout)
                     Path(p["out_file"]).unlink(missing_ok=True)
                     shutil.rmtree(work / "spill", ignore_errors=True)

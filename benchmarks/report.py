@@ -136,6 +136,17 @@ def _notes(doc: dict[str, Any]) -> list[str]:
         "each fresh process right after the method), so it includes the interpreter and the "
         "imported libraries."
     )
+    base = {
+        m["title"]: m["base_mib"]
+        for m in methods.values()
+        if m["scenario"] == "a" and m.get("base_mib") is not None
+    }
+    if base:
+        notes.append(
+            "Resident set before the method starts (interpreter and imports), in MiB: "
+            + ", ".join(f"{t} {b:.0f}" for t, b in base.items())
+            + "."
+        )
     notes.append(
         "The floor is DuckDB reading the same columns and sorting each input by key and time "
         "into temporary tables, without joining."

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import datetime as dt
-import decimal
 import math
 import statistics
 from dataclasses import dataclass
@@ -126,8 +125,11 @@ def _newest(rows: Sequence[_Row]) -> _Row | None:
     return max(rows, key=lambda r: (r.s, r.k, r.position))
 
 
-def _aggregate(agg: str, column: str | None, window: Sequence[_Row]) -> Any:
-    """Apply one trailing aggregate to the rows of a window (nulls ignored, as SQL does)."""
+def _aggregate(agg: str, column: str | None, window: Sequence[_Row], zero: float) -> Any:
+    """Apply one trailing aggregate to the rows of a window (nulls ignored, as SQL does).
+
+    ``zero`` is the empty sum in the column's type: 0 for integers, 0.0 for floats.
+    """
     if agg == "last":
         newest = _newest(window)
         return None if newest is None or column is None else newest.cells[column]
@@ -140,7 +142,7 @@ def _aggregate(agg: str, column: str | None, window: Sequence[_Row]) -> Any:
     if agg == "count_distinct":
         return len(set(values))
     if agg == "sum":
-        return sum(values) if values else 0
+        return sum(values, zero)
     if not values:
         return None
     if agg == "mean":
@@ -204,6 +206,10 @@ def oracle_build(
         rows = _table_rows(table, data[table.name], table_keys, aware=aware, timezone=timezone)
         names = feature.output_names()
         is_trailing = hasattr(feature, "agg")
+        zero: float = 0
+        if is_trailing and feature.column is not None:
+            dtype = data[table.name][feature.column].dtype
+            zero = 0.0 if pd.api.types.is_float_dtype(dtype) else 0
         columns: dict[str, list[Any]] = {}
         if is_trailing:
             columns[names[0]] = []
@@ -219,9 +225,7 @@ def oracle_build(
             matching = []
             if t is not None and key is not None:
                 matching = [
-                    r
-                    for r in rows
-                    if r.key == key and _visible(r, t, inclusive=table.inclusive)
+                    r for r in rows if r.key == key and _visible(r, t, inclusive=table.inclusive)
                 ]
             if is_trailing:
                 if t is None:  # null_times="keep": every feature null, counts included
@@ -229,7 +233,7 @@ def oracle_build(
                     continue
                 start = t - pd.Timedelta(feature.over)
                 window = [r for r in matching if r.s > start]
-                columns[names[0]].append(_aggregate(feature.agg, feature.column, window))
+                columns[names[0]].append(_aggregate(feature.agg, feature.column, window, zero))
                 continue
             chosen = _newest(matching)
             if (

@@ -203,9 +203,7 @@ class TrainingSetSpec:
     def join_keys(self, feature: Any) -> tuple[tuple[str, ...], tuple[str, ...]]:
         """(label columns, table columns) the feature joins on."""
         if feature.entity is not None:
-            refs = [
-                EntityRef(feature.entity.name, feature.table.columns_for(feature.entity.name))
-            ]
+            refs = [EntityRef(feature.entity.name, feature.table.columns_for(feature.entity.name))]
         else:
             refs = list(feature.table.entities)
         label_columns: list[str] = []

@@ -69,7 +69,7 @@ def test_schemas(tables: dict[str, pa.Table]) -> None:
         "views": {"customer_id": i64, "plant_id": i64, "viewed_at": ts},
         "returns": {"order_id": i64, "customer_id": i64, "plant_id": i64, "returned_at": ts},
     }
-    got = {name: dict(zip(t.schema.names, t.schema.types)) for name, t in tables.items()}
+    got = {name: {f.name: f.type for f in t.schema} for name, t in tables.items()}
     assert got == expected
     assert all(t.column(c).null_count == 0 for t in tables.values() for c in t.column_names)
 
@@ -97,7 +97,7 @@ def test_orders(frames: dict[str, pd.DataFrame]) -> None:
     assert 0.03 < orders["returned"].mean() < 0.25
     # Spring is the busy season.
     month = orders["ordered_at"].dt.month
-    assert month.isin([4, 5]).mean() > 2 * month.isin([11, 12]).mean()
+    assert month.isin([4, 5]).mean() > 1.5 * month.isin([11, 12]).mean()
 
 
 def test_amount_is_quantity_times_the_price_then_in_effect(frames: dict[str, pd.DataFrame]) -> None:

@@ -152,9 +152,8 @@ def test_null_value_in_newest_row_stays_null(api: ModuleType) -> None:
         {"user_id": [1, 1], "s": [m(1), m(2)], "v": pd.array([1, None], dtype="Int64")}
     )
     out = oracle_build(spec, {"labels": labels_at(3), "f": rows}, provenance=True)
-    assert out.columns.tolist() == [
-        "user_id", "t", "v", "v__time", "v__known_at", "v_last", "v_max",
-    ]  # fmt: skip
+    expected_columns = ["user_id", "t", "v", "v__time", "v__known_at", "v_last", "v_max"]
+    assert out.columns.tolist() == expected_columns
     assert out.iloc[0].tolist()[2:] == [None, m(2), m(2), None, 1]
 
 
@@ -272,9 +271,7 @@ def test_skipped_null_valid_times_and_composite_mapped_keys(api: ModuleType) -> 
         "f", time="s", entities={"store": ["region", "store"]}, null_times="skip"
     )
     spec = api.TrainingSetSpec(labels=labels, features=[api.Latest(table, ["v"], entity=store)])
-    label_rows = pd.DataFrame(
-        {"reg": ["n", "n", "s", "s"], "no": [1, 2, 1, 2], "t": [m(2)] * 4}
-    )
+    label_rows = pd.DataFrame({"reg": ["n", "n", "s", "s"], "no": [1, 2, 1, 2], "t": [m(2)] * 4})
     rows = pd.DataFrame(
         {
             "region": ["n", "n", "n", "s"],
@@ -294,13 +291,8 @@ def test_aware_times_compare_as_instants(api: ModuleType) -> None:
     label_rows = pd.DataFrame(
         {"user_id": [1], "t": [pd.Timestamp("2024-01-01 01:03", tz="Europe/Paris")]}
     )
-    rows = pd.DataFrame(
-        {
-            "user_id": [1, 1],
-            "s": [pd.Timestamp("2024-01-01 00:02", tz="UTC"), pd.Timestamp("2024-01-01 00:04", tz="UTC")],
-            "v": [1, 2],
-        }
-    )  # fmt: skip
+    utc = [pd.Timestamp("2024-01-01 00:02", tz="UTC"), pd.Timestamp("2024-01-01 00:04", tz="UTC")]
+    rows = pd.DataFrame({"user_id": [1, 1], "s": utc, "v": [1, 2]})
     out = oracle_build(spec, {"labels": label_rows, "f": rows}, provenance=True)
     assert out["v"].tolist() == [1]
     assert out.loc[0, "v__time"] == pd.Timestamp("2024-01-01 00:02", tz="UTC")

@@ -210,6 +210,12 @@ class DuckDBResult:
         self.plan = plan
         self._table: pa.Table | None = None
 
+    def readable_sql(self) -> str:
+        """The SQL with parameters written inline, for reading (the run binds them)."""
+        from .sql import Params
+
+        return Params(dict(self.params)).inline(self.sql)
+
     def relation(self) -> duckdb.DuckDBPyRelation:
         return self.engine.con.sql(self.sql, params=self.params)
 

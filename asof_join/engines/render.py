@@ -57,6 +57,14 @@ class SqlRenderer:
         """A duration of `value` microseconds, as a bound parameter."""
         return f"to_microseconds(CAST({self.params.add(value)} AS BIGINT))"
 
+    def arg_max(self, value: str, order: str) -> str:
+        """The value on the row with the greatest `order`, kept even when it is null."""
+        return f"arg_max_null({value}, {order})"
+
+    def valid_then_order(self, valid: str, ordinal: str) -> str:
+        """One sortable key for (valid time, input position): microseconds * 2^40 + position."""
+        return f"CAST(epoch_us({valid}) AS HUGEINT) * 1099511627776 + {ordinal}"
+
     def row_number_in_input_order(self) -> str:
         return "row_number() OVER ()"
 
@@ -144,42 +152,32 @@ class SqlRenderer:
     def timeline_cte(self, lookup: LatestLookup, rows: str) -> str:
         """One row per lookup time such that the newest one before t is the answer at t."""
         keys = [f'"__aj_k{i}"' for i in range(len(lookup.table_keys))]
-        nvals = len(lookup.values)
-        packed_vals = [f'"__aj_v{i}" := "__aj_v{i}"' for i in range(nvals)]
+        vals = [f'"__aj_v{i}"' for i in range(len(lookup.values))]
         if lookup.reduction == Reduction.VALID:
             # ties on (key, valid time): the last row in input order wins
-            pack = _join(['"__aj_o" := "__aj_ord"', '"__aj_kt" := "__aj_kt"', *packed_vals])
-            grouped = self.cte(
-                f"__aj_dedup{lookup.step}",
-                f"SELECT {_join(keys)}, \"__aj_s\", max(struct_pack({pack})) AS \"__aj_x\"\n"
-                f"    FROM {rows} GROUP BY {_join(keys)}, \"__aj_s\"",
-            )
-            unpack = [f'"__aj_x"."__aj_v{i}" AS "__aj_v{i}"' for i in range(nvals)]
+            picks = [self.arg_max(v, '"__aj_ord"') + f" AS {v}" for v in vals]
             body = (
-                f"SELECT {_join(keys)}, \"__aj_s\", \"__aj_x\".\"__aj_kt\" AS \"__aj_at\""
-                + (", " + _join(unpack) if unpack else "")
-                + f"\n    FROM {grouped}"
+                f"SELECT {_join(keys)}, \"__aj_s\", max(\"__aj_kt\") AS \"__aj_at\""
+                + "".join(", " + p for p in picks)
+                + f"\n    FROM {rows} GROUP BY {_join(keys)}, \"__aj_s\""
             )
             return self.cte(f"__aj_line{lookup.step}", body)
-        # known-time column: collapse each (key, known time) batch to its newest row, then keep a
-        # row when its valid time is at least the running max of valid times known before it
-        pack = _join(['"__aj_s" := "__aj_s"', '"__aj_o" := "__aj_ord"', *packed_vals])
+        # known-time column: collapse each (key, known time) batch to its newest row (greatest
+        # valid time, then last in input order), then keep a row when its valid time is at
+        # least the running max of valid times known strictly before it
+        order = self.valid_then_order('"__aj_s"', '"__aj_ord"')
+        picks = [self.arg_max(v, order) + f" AS {v}" for v in ['"__aj_s"', *vals]]
         grouped = self.cte(
             f"__aj_batch{lookup.step}",
-            f"SELECT {_join(keys)}, \"__aj_kt\", max(struct_pack({pack})) AS \"__aj_x\"\n"
+            f"SELECT {_join(keys)}, \"__aj_kt\" AS \"__aj_at\", {_join(picks)}\n"
             f"    FROM {rows} GROUP BY {_join(keys)}, \"__aj_kt\"",
         )
-        unpack = [f'"__aj_x"."__aj_v{i}" AS "__aj_v{i}"' for i in range(nvals)]
-        select = (
-            f"SELECT {_join(keys)}, \"__aj_x\".\"__aj_s\" AS \"__aj_s\", "
-            f"\"__aj_kt\" AS \"__aj_at\"" + (", " + _join(unpack) if unpack else "")
-            + f"\n    FROM {grouped}"
-        )
         running = (
-            f"max(\"__aj_x\".\"__aj_s\") OVER (PARTITION BY {_join(keys)} ORDER BY \"__aj_kt\" "
+            f"max(\"__aj_s\") OVER (PARTITION BY {_join(keys)} ORDER BY \"__aj_at\" "
             "ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING)"
         )
-        cond = f"\"__aj_x\".\"__aj_s\" >= coalesce({running}, \"__aj_x\".\"__aj_s\")"
+        select = f"SELECT *\n    FROM {grouped}"
+        cond = f"\"__aj_s\" >= coalesce({running}, \"__aj_s\")"
         return self.cte(f"__aj_line{lookup.step}", self.qualify(select, cond))
 
     def render_LatestLookup(  # noqa: N802 - found by step name
@@ -202,7 +200,7 @@ class SqlRenderer:
             if v.max_age_us is not None:
                 fresh = f'{s} >= {label}."__aj_t" - {self.micros(v.max_age_us)}'
                 val, s, at = (f"CASE WHEN {fresh} THEN {x} END" for x in (val, s, at))
-            if self.plan.aware:
+            if self.plan.aware and v.provenance:
                 s, at = self.aware_from_utc(s), self.aware_from_utc(at)
             columns[("value", i)] = val
             columns[("time", i)] = s

@@ -9,6 +9,7 @@ import pyarrow as pa
 
 from .errors import (
     ColumnNotFoundError,
+    InputError,
     KeyTypeMismatchError,
     SpecError,
     TimeTypeError,
@@ -110,6 +111,15 @@ def check_inputs(
             for col in ref.columns:
                 _require(schema, name, col, f"key of entity {ref.entity!r}", "Fix entities=.")
     label_schema = schemas[spec.labels.name]
+    reserved = [c for c in label_schema.names if c.startswith("__aj_")]
+    if reserved:
+        msg = (
+            f"label table {spec.labels.name!r} has column(s) {reserved}; names starting with "
+            "'__aj_' are reserved for asof_join's working columns: rename them"
+        )
+        err = InputError(msg)
+        err.table, err.column = spec.labels.name, reserved[0]
+        raise err
     for feat in spec.features:
         name = feat.table.name
         schema = schemas[name]

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import enum
+import re
 from typing import TYPE_CHECKING, Any, TypeVar
 
 import numpy as np
@@ -144,8 +145,8 @@ def sample_negatives(
         ...                        "t": pd.to_datetime(["2024-02-01", "2024-03-01"])})
         >>> out = sample_negatives(orders, items, user="customer_id", item="plant_id", time="t",
         ...                        per_positive=5)
-        >>> out[["group_id", "plant_id", "label"]].values.tolist()
-        [[0, 1, 1], [0, 2, 0], [0, 3, 0], [1, 2, 1], [1, 3, 0]]
+        >>> out[["group_id", "plant_id", "label"]].values.tolist()  # plant 4 is not listed yet
+        [[0, 1, 1], [0, 3, 0], [0, 2, 0], [1, 2, 1], [1, 3, 0]]
     """
     kind = frame_kind(positives, "sample_negatives(positives)")
     items_kind = frame_kind(items, "sample_negatives(items)")
@@ -211,7 +212,7 @@ def sample_negatives(
     con = duckdb.connect()
     try:
         if threads is not None:
-            con.execute(f"SET threads = {int(threads)}")
+            con.execute(f"SET threads = {int(threads)}").fetchall()
         n_pos = pos_arrow.num_rows
         tables = {
             "aj_pos": pa.table(
@@ -467,7 +468,7 @@ WITH todo AS (
 ), kept AS (
     SELECT * FROM pool AS d WHERE {keep}
 ), keyed AS (
-    SELECT g, i, rem, {key} AS key FROM kept AS d {weight_join}
+    SELECT d.g, d.i, d.rem, {key} AS key FROM kept AS d {weight_join}
 )
 SELECT g, i, $enum_round * $ord_round + row_number() OVER (PARTITION BY g ORDER BY key, i)
 FROM keyed
@@ -485,7 +486,7 @@ _POPULAR_SETUP = """
 -- interactions strictly before t) picks an item with probability proportional to its count
 CREATE TEMP TABLE aj_log_pos AS
 SELECT (row_number() OVER (ORDER BY t, n) - 1)::BIGINT AS pos, i FROM aj_log;
--- m(x): interactions at or before each distinct log time x; m(t) = m of the greatest x < t
+-- m(x): interactions at or before each distinct log time x, and m(t) = m(greatest x < t)
 CREATE TEMP TABLE aj_before AS
 SELECT t AS x, sum(count(*)) OVER (ORDER BY t)::BIGINT AS m FROM aj_log GROUP BY t;
 -- cumulative interactions per item at each of its interaction times
@@ -506,23 +507,23 @@ def _draw(
     popular = mode is Sampler.POPULAR
     eligible = _POPULAR_ELIGIBLE if popular else _UNIFORM_ELIGIBLE
     for statement in _split(_SETUP.format(eligible=eligible)):
-        con.execute(statement)
+        _run(con, statement, {})
     if popular:
         for statement in _split(_POPULAR_SETUP):
-            con.execute(statement)
+            _run(con, statement, {})
     groups = _GROUPS.format(
         seen_count=_SEEN_COUNT if exclude_seen else _OWN_COUNT,
         m="coalesce(b.m, 0)" if popular else "0",
         before_join="ASOF LEFT JOIN aj_before AS b ON p.t > b.x" if popular else "",
     )
     for statement in _split(groups):
-        con.execute(statement, {"per": per_positive})
+        _run(con, statement, {"per": per_positive})
 
-    (total,) = con.execute("SELECT coalesce(sum(need), 0) FROM aj_g").fetchone() or (0,)
+    (total,) = _one(con, "SELECT coalesce(sum(need), 0) FROM aj_g")
     if not total:
         _raise_no_candidates(con, mode, exclude_seen)
 
-    con.execute("CREATE TEMP TABLE aj_neg (g BIGINT, i BIGINT, ord BIGINT)")
+    _run(con, "CREATE TEMP TABLE aj_neg (g BIGINT, i BIGINT, ord BIGINT)", {})
     keep = _KEEP.format(seen_filter=_SEEN_FILTER if exclude_seen else "")
     pick_item, pick_join = _POPULAR_PICK if popular else _UNIFORM_PICK
     params = {"seed": int(seed), "ord_round": _ORD_ROUND}
@@ -536,19 +537,32 @@ def _draw(
         else:
             k = f"ceil((1.5 * rem + 8) * {scale} * n / pool)::BIGINT"
         sql = _ROUND.format(k=k, pick_item=pick_item, pick_join=pick_join, keep=keep)
-        con.execute(sql, {**params, "round": rnd, "small": _SMALL_POOL_SLACK})
+        _run(con, sql, {**params, "round": rnd, "small": _SMALL_POOL_SLACK})
     key, weight_join = _POPULAR_KEY if popular else _UNIFORM_KEY
     sql = _ENUMERATE.format(keep=keep, key=key, weight_join=weight_join)
-    con.execute(sql, {**params, "enum_round": _ROUNDS, "enum_salt": _ENUM_SALT})
+    _run(con, sql, {**params, "enum_round": _ROUNDS, "enum_salt": _ENUM_SALT})
 
-    short = con.execute(
+    (short,) = _one(
+        con,
         "SELECT count(*) FROM aj_g AS g LEFT JOIN (SELECT g, count(*) AS got FROM aj_neg "
-        "GROUP BY g) AS k USING (g) WHERE coalesce(k.got, 0) <> g.need"
-    ).fetchone()
-    assert short is not None and short[0] == 0, "internal error: groups left short"
-    negatives = con.execute("SELECT g, i, ord FROM aj_neg ORDER BY g, ord").to_arrow_table()
-    item_values = con.execute("SELECT item FROM aj_it ORDER BY i").to_arrow_table().column(0)
+        "GROUP BY g) AS k USING (g) WHERE coalesce(k.got, 0) <> g.need",
+    )
+    assert short == 0, "internal error: groups left short"
+    negatives = con.sql("SELECT g, i, ord FROM aj_neg ORDER BY g, ord").to_arrow_table()
+    item_values = con.sql("SELECT item FROM aj_it ORDER BY i").to_arrow_table().column(0)
     return negatives, item_values.combine_chunks()
+
+
+def _run(con: duckdb.DuckDBPyConnection, sql: str, params: dict[str, object]) -> None:
+    """Execute with the parameters the statement names (DuckDB rejects unused ones)."""
+    used = set(re.findall(r"\$([a-z_]+)", sql))
+    con.execute(sql, {k: v for k, v in params.items() if k in used}).fetchall()
+
+
+def _one(con: duckdb.DuckDBPyConnection, sql: str) -> tuple[Any, ...]:
+    """The single row of a query."""
+    rows = con.execute(sql).fetchall()
+    return tuple(rows[0])
 
 
 def _split(script: str) -> list[str]:
@@ -560,12 +574,11 @@ def _only_comments(statement: str) -> bool:
 
 
 def _raise_no_candidates(con: duckdb.DuckDBPyConnection, mode: Sampler, exclude_seen: bool) -> None:
-    row = con.execute(
+    first, last, n_items = _one(
+        con,
         "SELECT (SELECT min(e) FROM aj_cand), (SELECT max(t) FROM aj_pos), "
-        "(SELECT count(*) FROM aj_it)"
-    ).fetchone()
-    assert row is not None
-    first, last, n_items = row
+        "(SELECT count(*) FROM aj_it)",
+    )
     if n_items == 0:
         reason = "items is empty"
     elif first is None:

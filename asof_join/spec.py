@@ -22,8 +22,12 @@ SPEC_VERSION = 1
 
 def _format_validation_error(model: str, err: ValidationError) -> SpecError:
     """Turn pydantic's report into one SpecError listing each problem with its field."""
-    problems = []
+    problems: list[str] = []
     for item in err.errors():
+        inner = (item.get("ctx") or {}).get("error")
+        if isinstance(inner, SpecError):
+            problems.extend(inner.problems or (str(inner),))
+            continue
         where = ".".join(str(p) for p in item["loc"])
         text = str(item["msg"]).removeprefix("Value error, ")
         problems.append(f"{model}.{where}: {text}" if where else f"{model}: {text}")

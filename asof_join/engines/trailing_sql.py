@@ -205,7 +205,7 @@ def _sweep(
         x = None if v.column is None else _v(cols, v)
         if v.agg == "count":
             cnt = "1" if x is None else f"CASE WHEN {x} IS NULL THEN 0 ELSE 1 END"
-            outs.append(f"coalesce({running(f'n{i}', cnt, j)}, 0)")
+            outs.append(f"CAST(coalesce({running(f'n{i}', cnt, j)}, 0) AS BIGINT)")
         elif v.agg == "sum":
             assert x is not None
             xv = f"CAST({x} AS BIGINT)" if v.integer else x
@@ -230,7 +230,7 @@ def _sweep(
                 f"sum(CASE WHEN \"__aj_tag\" = {1000 + i} THEN 1 "
                 f"WHEN \"__aj_tag\" = {2000 + i} THEN -1 END) OVER {win}"
             )
-            outs.append(f'coalesce("u{i}", 0)')
+            outs.append(f'CAST(coalesce("u{i}", 0) AS BIGINT)')
         elif v.agg in ("min", "max"):
             outs.append(None)  # read from the dyadic blocks below
         else:  # pragma: no cover - `last` is planned as a latest lookup

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 __version__ = "0.1.0"
 
-from .build import TrainingSet, build  # noqa: E402
-from .errors import (  # noqa: E402
+from .build import TrainingSet, build
+from .errors import (
     AsofJoinError,
     ColumnNotFoundError,
     InputError,
@@ -18,8 +18,8 @@ from .errors import (  # noqa: E402
     UnsupportedByEngineError,
 )
 from .ranking import sample_negatives
-from .spec import Entity, EventTable, Latest, Trailing, TrainingSetSpec  # noqa: E402
-from .spec_file import load_spec, spec_json_schema  # noqa: E402
+from .spec import Entity, EventTable, Latest, Trailing, TrainingSetSpec
+from .spec_file import load_spec, spec_json_schema
 from .splits import split_by_time
 
 __all__ = [

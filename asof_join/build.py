@@ -134,9 +134,10 @@ def build(
         >>> orders = aj.EventTable("orders", time="at", entities=[customer])
         >>> tiers = aj.EventTable("tiers", time="at", entities=[customer])
         >>> spec = aj.TrainingSetSpec(labels=orders, features=[aj.Latest(tiers, ["tier"])])
-        >>> o = pd.DataFrame({"customer_id": [1, 1], "at": pd.to_datetime(["2024-01-02", "2024-01-05"])})
-        >>> t = pd.DataFrame({"customer_id": [1, 1], "at": pd.to_datetime(["2024-01-01", "2024-01-05"]),
-        ...                   "tier": ["seed", "bloom"]})
+        >>> at = pd.to_datetime(["2024-01-02", "2024-01-05"])
+        >>> o = pd.DataFrame({"customer_id": [1, 1], "at": at})
+        >>> t = pd.DataFrame({"customer_id": [1, 1], "tier": ["seed", "bloom"],
+        ...                   "at": pd.to_datetime(["2024-01-01", "2024-01-05"])})
         >>> aj.build(spec, data={"orders": o, "tiers": t}).to_pandas()["tier"].tolist()
         ['seed', 'seed']
     """

@@ -48,9 +48,7 @@ class ColumnNotFoundError(InputError):
     ) -> ColumnNotFoundError:
         cols = list(available)
         hint = did_you_mean(column, cols)
-        msg = (
-            f"table {table!r} has no column {column!r} (its {role}). Columns: {cols}.{hint} {fix}"
-        )
+        msg = f"table {table!r} has no column {column!r} (its {role}). Columns: {cols}.{hint} {fix}"
         err = cls(msg)
         err.table, err.column = table, column
         return err

@@ -129,7 +129,7 @@ def check_inputs(
         elif isinstance(feat, Trailing) and feat.column is not None:
             _require(schema, name, feat.column, "feature column", "Fix the feature's column.")
         lkeys, tkeys = spec.join_keys(feat)
-        for lcol, tcol in zip(lkeys, tkeys):
+        for lcol, tcol in zip(lkeys, tkeys, strict=True):
             ltype = _require(
                 label_schema,
                 spec.labels.name,

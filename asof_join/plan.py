@@ -217,7 +217,7 @@ def make_plan(
             step = _latest_step(latest_by_key, meta, pending_latest, group)
             values = pending_latest[step]
             max_age = None if feat.max_age is None else to_micros(feat.max_age)
-            for col, out in zip(feat.columns, feat.output_names()):
+            for col, out in zip(feat.columns, feat.output_names(), strict=True):
                 values.append(LatestValue(col, out, max_age, provenance))
                 idx = len(values) - 1
                 outputs.append(OutputColumn(out, step, "value", idx))
@@ -234,9 +234,7 @@ def make_plan(
             tvalues = pending_trailing[step]
             out = feat.output_names()[0]
             integer = (feat.table.name, feat.column or "") in integer_columns
-            tvalues.append(
-                TrailingValue(feat.column, feat.agg, to_micros(feat.over), out, integer)
-            )
+            tvalues.append(TrailingValue(feat.column, feat.agg, to_micros(feat.over), out, integer))
             outputs.append(OutputColumn(out, step, "value", len(tvalues) - 1))
 
     tables = spec.tables()

@@ -1,4 +1,4 @@
-"""The declaration: entities, event tables, features and the training-set spec (pure, serializable)."""
+"""The declaration: entities, event tables, features, the training-set spec (pure, serializable)."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ import hashlib
 import json
 import zoneinfo
 from collections.abc import Iterable, Mapping
-from typing import Any, Literal, Union
+from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
 
@@ -16,7 +16,16 @@ from .errors import SpecError
 
 NullTimes = Literal["error", "skip", "keep"]
 Agg = Literal["count", "count_distinct", "sum", "mean", "min", "max", "std", "last"]
-AGGREGATES: tuple[str, ...] = ("count", "count_distinct", "sum", "mean", "min", "max", "std", "last")
+AGGREGATES: tuple[str, ...] = (
+    "count",
+    "count_distinct",
+    "sum",
+    "mean",
+    "min",
+    "max",
+    "std",
+    "last",
+)
 SPEC_VERSION = 1
 
 
@@ -315,7 +324,7 @@ class Trailing(_Feature):
         return [self.prefix + (self.column or "count")]
 
 
-Feature = Union[Latest, Trailing]
+Feature = Latest | Trailing
 
 
 class TrainingSetSpec(_Model):

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
-from typing import Any, Literal, Union
+from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
@@ -22,7 +22,7 @@ from .spec import (
     TrainingSetSpec,
 )
 
-Duration = Union[str, float, int]
+Duration = str | float | int
 
 
 class _Doc(BaseModel):
@@ -33,7 +33,7 @@ class TableDoc(_Doc):
     """One event table in a spec file."""
 
     time: str = Field(description="valid-time column")
-    entities: Union[list[str], dict[str, list[str]]] = Field(
+    entities: list[str] | dict[str, list[str]] = Field(
         default_factory=list,
         description="entity names (their key names are the columns) or {entity: [columns]}",
     )
@@ -75,7 +75,7 @@ class SpecDocument(_Doc):
     entities: dict[str, list[str]] = Field(default_factory=dict)
     tables: dict[str, TableDoc]
     labels: str
-    features: list[Union[LatestDoc, TrailingDoc]] = Field(default_factory=list)
+    features: list[LatestDoc | TrailingDoc] = Field(default_factory=list)
 
 
 def spec_json_schema() -> dict[str, Any]:

@@ -40,9 +40,7 @@ def _profiles() -> pd.DataFrame:
 
 
 ORDERS = aj.EventTable("orders", time="ordered_at", entities=[customer, plant])
-PROFILES = aj.EventTable(
-    "profiles", time="updated_at", known_at="loaded_at", entities=[customer]
-)
+PROFILES = aj.EventTable("profiles", time="updated_at", known_at="loaded_at", entities=[customer])
 SPEC = aj.TrainingSetSpec(labels=ORDERS, features=[aj.Latest(PROFILES, ["tier"])])
 
 
@@ -72,7 +70,8 @@ def test_known_at_and_delay_together() -> None:
 
 def test_duplicate_output_names_name_both_features() -> None:
     prices = aj.EventTable("prices", time="effective_at", entities=[plant])
-    with pytest.raises(aj.SpecError, match=r"Latest\('prices'.*Latest\('profiles'.*both output 'tier'"):
+    expected = r"Latest\('prices'.*Latest\('profiles'.*both output 'tier'"
+    with pytest.raises(aj.SpecError, match=expected):
         aj.TrainingSetSpec(
             labels=ORDERS,
             features=[aj.Latest(PROFILES, ["tier"]), aj.Latest(prices, ["tier"])],
@@ -101,9 +100,7 @@ def test_name_with_several_columns() -> None:
 
 def test_unknown_entity_on_feature() -> None:
     with pytest.raises(aj.SpecError, match=r"entity='plant'.*'profiles'"):
-        aj.TrainingSetSpec(
-            labels=ORDERS, features=[aj.Latest(PROFILES, ["tier"], entity="plant")]
-        )
+        aj.TrainingSetSpec(labels=ORDERS, features=[aj.Latest(PROFILES, ["tier"], entity="plant")])
 
 
 def test_two_tables_one_name() -> None:

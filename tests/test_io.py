@@ -102,8 +102,9 @@ def test_label_columns_keep_value_and_type() -> None:
         {
             "customer_id": pa.array([3, 1, 3, 1], pa.int8()),
             "ordered_at": pa.array(
-                pd.to_datetime(["2024-05-02", "2024-05-01", "2024-05-01", "2024-05-03"])
-                .tz_localize("Europe/Paris"),
+                pd.to_datetime(
+                    ["2024-05-02", "2024-05-01", "2024-05-01", "2024-05-03"]
+                ).tz_localize("Europe/Paris"),
                 pa.timestamp("us", tz="Europe/Paris"),
             ),
             "ship_day": pa.array(pd.to_datetime(["2024-05-04"] * 4).date, pa.date32()),

@@ -56,21 +56,21 @@ def _pools(
     """Brute force: per positive, candidate item -> weight (1, or interactions before t)."""
     log = positives if log is None else log
     valid = items.groupby("item")["t"].min()
+    cand, cand_s = valid.index.to_numpy(), valid.to_numpy()
+    lu, li, lt = log["user"].to_numpy(), log["item"].to_numpy(), log["t"].to_numpy()
     out = []
     for row in positives.itertuples(index=False):
-        pool: dict[int, int] = {}
-        for item, s in valid.items():
-            if s >= row.t or item == row.item:
-                continue
-            if (
-                exclude_seen
-                and ((log["user"] == row.user) & (log["item"] == item) & (log["t"] <= row.t)).any()
-            ):
-                continue
-            weight = int(((log["item"] == item) & (log["t"] < row.t)).sum()) if popular else 1
-            if weight > 0:
-                pool[int(item)] = weight
-        out.append(pool)
+        ok = (cand_s < np.datetime64(row.t)) & (cand != row.item)
+        if exclude_seen:
+            seen = li[(lu == row.user) & (lt <= np.datetime64(row.t))]
+            ok &= ~np.isin(cand, seen)
+        if popular:
+            earlier = li[lt < np.datetime64(row.t)]
+            weight = (cand[:, None] == earlier[None, :]).sum(axis=1)
+        else:
+            weight = np.ones(len(cand), dtype=np.int64)
+        ok &= weight > 0
+        out.append({int(i): int(w) for i, w in zip(cand[ok], weight[ok])})
     return out
 
 

@@ -87,10 +87,7 @@ def test_fingerprint_changes_with_semantics(tmp_path: Path) -> None:
 
 
 def test_fingerprint_is_stable_across_processes() -> None:
-    code = (
-        "import asof_join as aj, sys; "
-        f"print(aj.load_spec({str(NURSERY)!r}).fingerprint())"
-    )
+    code = f"import asof_join as aj, sys; print(aj.load_spec({str(NURSERY)!r}).fingerprint())"
     runs = {
         subprocess.run(
             [sys.executable, "-c", code],

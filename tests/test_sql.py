@@ -59,7 +59,8 @@ def test_hostile_names_end_to_end() -> None:
             aj.Trailing(feats, value, "count_distinct", over="3d", name="n dist; select"),
         ],
     )
-    lab = pd.DataFrame({key: [1, 1, 2], time: pd.to_datetime(["2024-01-03", "2024-01-10", "2024-01-03"])})
+    times = pd.to_datetime(["2024-01-03", "2024-01-10", "2024-01-03"])
+    lab = pd.DataFrame({key: [1, 1, 2], time: times})
     src = pd.DataFrame(
         {
             key: [1, 1, 2],
@@ -83,7 +84,7 @@ def test_values_are_bound_not_pasted() -> None:
     spec = aj.TrainingSetSpec(labels=labels, features=[aj.Latest(src, ["v"], max_age="2d")])
     frame = pd.DataFrame({"k": [1], "t": pd.to_datetime(["2024-01-02"]), "v": [1.0]})
     ts = aj.build(spec, data={"l": frame[["k", "t"]], "s": frame})
-    raw = ts._result.sql  # noqa: SLF001 - checking the unbound text on purpose
+    raw = ts._result.sql
     assert "$p0" in raw and "172800000000" not in raw
     assert "172800000000" in ts.sql  # the readable form shows the values
 

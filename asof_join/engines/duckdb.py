@@ -129,10 +129,8 @@ class DuckDBEngine:
                 raise err
         lower = path.lower()
         try:
-            if lower.endswith(_CSV):
-                rel = self.con.read_csv(path)
-            else:
-                rel = self.con.read_parquet(path)
+            is_csv = lower.endswith(_CSV)
+            rel = self.con.read_csv(path) if is_csv else self.con.read_parquet(path)
             rel.create_view(view)
         except duckdb.Error as exc:
             first = str(exc).splitlines()[0]

@@ -113,13 +113,13 @@ class SqlRenderer:
         select = _join(label_cols + projections, ",\n       ")
         with_sql = _join([f"{q(n)} AS (\n    {b}\n)" for n, b in self.ctes], ",\n")
         body = f"SELECT {select}\nFROM {labels} AS l\n" + "\n".join(joins)
-        return f"WITH {with_sql}\n{body}\nORDER BY l.\"__aj_row\""
+        return f'WITH {with_sql}\n{body}\nORDER BY l."__aj_row"'
 
     def render_labels(self) -> str:
         lab = self.plan.labels
         body = (
-            f"SELECT {self.row_number_in_input_order()} - 1 AS \"__aj_row\", "
-            f"{self.time_expr(lab.time)} AS \"__aj_t\", *\n    FROM {self.source(lab.table)}"
+            f'SELECT {self.row_number_in_input_order()} - 1 AS "__aj_row", '
+            f'{self.time_expr(lab.time)} AS "__aj_t", *\n    FROM {self.source(lab.table)}'
         )
         return self.cte("__aj_labels", body)
 
@@ -132,9 +132,9 @@ class SqlRenderer:
             k = f"{s} + {self.micros(lookup.delay_us)}"
         else:
             k = s
-        keys = [f"{q(c)} AS \"__aj_k{i}\"" for i, c in enumerate(lookup.table_keys)]
+        keys = [f'{q(c)} AS "__aj_k{i}"' for i, c in enumerate(lookup.table_keys)]
         vals = [
-            f"{q(c) if c is not None else 'NULL'} AS \"__aj_v{i}\""
+            f'{q(c) if c is not None else "NULL"} AS "__aj_v{i}"'
             for i, c in enumerate(value_columns)
         ]
         where = [f"{q(c)} IS NOT NULL" for c in lookup.table_keys]
@@ -142,8 +142,8 @@ class SqlRenderer:
         if lookup.known is not None:
             where.append(f"{q(lookup.known.column)} IS NOT NULL")
         body = (
-            f"SELECT {_join(keys)}, {s} AS \"__aj_s\", {k} AS \"__aj_kt\", "
-            f"{self.row_number_in_input_order()} AS \"__aj_ord\""
+            f'SELECT {_join(keys)}, {s} AS "__aj_s", {k} AS "__aj_kt", '
+            f'{self.row_number_in_input_order()} AS "__aj_ord"'
             + (", " + _join(vals) if vals else "")
             + f"\n    FROM {self.source(lookup.table)}\n    WHERE {_join(where, ' AND ')}"
         )
@@ -157,9 +157,9 @@ class SqlRenderer:
             # ties on (key, valid time): the last row in input order wins
             picks = [self.arg_max(v, '"__aj_ord"') + f" AS {v}" for v in vals]
             body = (
-                f"SELECT {_join(keys)}, \"__aj_s\", max(\"__aj_kt\") AS \"__aj_at\""
+                f'SELECT {_join(keys)}, "__aj_s", max("__aj_kt") AS "__aj_at"'
                 + "".join(", " + p for p in picks)
-                + f"\n    FROM {rows} GROUP BY {_join(keys)}, \"__aj_s\""
+                + f'\n    FROM {rows} GROUP BY {_join(keys)}, "__aj_s"'
             )
             return self.cte(f"__aj_line{lookup.step}", body)
         # known-time column: collapse each (key, known time) batch to its newest row (greatest
@@ -169,26 +169,24 @@ class SqlRenderer:
         picks = [self.arg_max(v, order) + f" AS {v}" for v in ['"__aj_s"', *vals]]
         grouped = self.cte(
             f"__aj_batch{lookup.step}",
-            f"SELECT {_join(keys)}, \"__aj_kt\" AS \"__aj_at\", {_join(picks)}\n"
-            f"    FROM {rows} GROUP BY {_join(keys)}, \"__aj_kt\"",
+            f'SELECT {_join(keys)}, "__aj_kt" AS "__aj_at", {_join(picks)}\n'
+            f'    FROM {rows} GROUP BY {_join(keys)}, "__aj_kt"',
         )
         running = (
-            f"max(\"__aj_s\") OVER (PARTITION BY {_join(keys)} ORDER BY \"__aj_at\" "
+            f'max("__aj_s") OVER (PARTITION BY {_join(keys)} ORDER BY "__aj_at" '
             "ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING)"
         )
         select = f"SELECT *\n    FROM {grouped}"
-        cond = f"\"__aj_s\" >= coalesce({running}, \"__aj_s\")"
+        cond = f'"__aj_s" >= coalesce({running}, "__aj_s")'
         return self.cte(f"__aj_line{lookup.step}", self.qualify(select, cond))
 
-    def render_LatestLookup(  # noqa: N802 - found by step name
+    def render_LatestLookup(
         self, lookup: LatestLookup, label: str
     ) -> tuple[str, dict[tuple[str, int], str]]:
         rows = self.rows_cte(lookup, [v.column for v in lookup.values])
         line = self.timeline_cte(lookup, rows)
         alias = f"f{lookup.step}"
-        on = [
-            f"{label}.{q(lc)} = {alias}.\"__aj_k{i}\"" for i, lc in enumerate(lookup.label_keys)
-        ]
+        on = [f'{label}.{q(lc)} = {alias}."__aj_k{i}"' for i, lc in enumerate(lookup.label_keys)]
         op = ">=" if lookup.inclusive else ">"
         on.append(f'{label}."__aj_t" {op} {alias}."__aj_at"')
         join = f"ASOF LEFT JOIN {line} AS {alias} ON {_join(on, ' AND ')}"
@@ -207,7 +205,7 @@ class SqlRenderer:
             columns[("known_at", i)] = at
         return join, columns
 
-    def render_TrailingLookup(  # noqa: N802 - found by step name
+    def render_TrailingLookup(
         self, lookup: TrailingLookup, label: str
     ) -> tuple[str, dict[tuple[str, int], str]]:
         from .trailing_sql import render_trailing

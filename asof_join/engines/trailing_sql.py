@@ -66,11 +66,11 @@ def _frame(
     null_vals = [f'NULL AS "__aj_v{i}"' for i in range(len(cols))]
     union = r.cte(
         f"__aj_tu{lookup.step}",
-        f"SELECT {', '.join(keys)}, epoch_us(\"__aj_s\") AS \"__aj_p\", "
-        f"CAST(NULL AS BIGINT) AS \"__aj_row\", 1 AS \"__aj_one\""
+        f'SELECT {", ".join(keys)}, epoch_us("__aj_s") AS "__aj_p", '
+        f'CAST(NULL AS BIGINT) AS "__aj_row", 1 AS "__aj_one"'
         + "".join(", " + v for v in vals)
         + f"\n    FROM {rows}\n    UNION ALL\n    SELECT {', '.join(_label_keys(lookup))}, "
-        f"epoch_us(\"__aj_t\") - {int(shift)} AS \"__aj_p\", \"__aj_row\", NULL AS \"__aj_one\""
+        f'epoch_us("__aj_t") - {int(shift)} AS "__aj_p", "__aj_row", NULL AS "__aj_one"'
         + "".join(", " + v for v in null_vals)
         + '\n    FROM "__aj_labels"',
     )
@@ -96,8 +96,8 @@ def _frame(
         for off, name in windows.items()
     )
     body = (
-        f"SELECT * FROM (SELECT \"__aj_row\", {', '.join(selects)}\n    FROM {union}\n"
-        f"    WINDOW {window_sql})\n    WHERE \"__aj_row\" IS NOT NULL"
+        f'SELECT * FROM (SELECT "__aj_row", {", ".join(selects)}\n    FROM {union}\n'
+        f'    WINDOW {window_sql})\n    WHERE "__aj_row" IS NOT NULL'
     )
     return r.cte(f"__aj_trail{lookup.step}", body), exprs
 
@@ -140,52 +140,55 @@ def _sweep(
     null_vals = [f'NULL AS "__aj_v{i}"' for i in range(len(cols))]
     # per-key centre of each column, so sums of squares do not cancel catastrophically
     centred = [
-        f"avg(CAST(\"__aj_v{i}\" AS DOUBLE)) OVER (PARTITION BY {part}) AS \"__aj_c{i}\""
+        f'avg(CAST("__aj_v{i}" AS DOUBLE)) OVER (PARTITION BY {part}) AS "__aj_c{i}"'
         for i, v in enumerate(cols)
         if any(x.agg == "std" and x.column == v for x in lookup.values)
     ]
     base = r.cte(
         f"__aj_ev{lookup.step}",
-        f"SELECT {part}, \"__aj_ord\", epoch_us(\"__aj_kt\") AS \"__aj_a\", "
-        f"epoch_us(\"__aj_s\") AS \"__aj_sv\"" + "".join(", " + v for v in vals)
-        + "".join(", " + c for c in centred) + f"\n    FROM {rows}",
+        f'SELECT {part}, "__aj_ord", epoch_us("__aj_kt") AS "__aj_a", '
+        f'epoch_us("__aj_s") AS "__aj_sv"'
+        + "".join(", " + v for v in vals)
+        + "".join(", " + c for c in centred)
+        + f"\n    FROM {rows}",
     )
     centre_cols = [c.rsplit(" AS ", 1)[1] for c in centred]
     carry = vals + centre_cols
     null_carry = null_vals + [f"NULL AS {c}" for c in centre_cols]
     pad = 1 if strict else 0
     parts = [
-        f"SELECT {part}, \"__aj_ord\", \"__aj_a\" AS \"__aj_p\", {enter_kind} AS \"__aj_kind\", "
-        f"-1 AS \"__aj_tag\", CAST(NULL AS BIGINT) AS \"__aj_row\""
-        + "".join(", " + c for c in carry) + f" FROM {base}"
+        f'SELECT {part}, "__aj_ord", "__aj_a" AS "__aj_p", {enter_kind} AS "__aj_kind", '
+        f'-1 AS "__aj_tag", CAST(NULL AS BIGINT) AS "__aj_row"'
+        + "".join(", " + c for c in carry)
+        + f" FROM {base}"
     ]
     for j, w in enumerate(windows):
         parts.append(
-            f"SELECT {part}, \"__aj_ord\", greatest(\"__aj_sv\" + {int(w)}, \"__aj_a\" + {pad}), "
+            f'SELECT {part}, "__aj_ord", greatest("__aj_sv" + {int(w)}, "__aj_a" + {pad}), '
             f"0, {j}, NULL" + "".join(", " + c for c in carry) + f" FROM {base}"
         )
     # count_distinct: merge each (key, value)'s intervals into disjoint islands first
-    distinct = [
-        (i, v) for i, v in enumerate(lookup.values) if v.agg == "count_distinct"
-    ]
+    distinct = [(i, v) for i, v in enumerate(lookup.values) if v.agg == "count_distinct"]
     for i, v in distinct:
         isl = _islands(r, lookup, base, cols, v, i, strict)
         parts.append(
-            f"SELECT {part}, NULL, \"__aj_lo\", {enter_kind}, {1000 + i}, NULL"
-            + "".join(", " + c for c in null_carry) + f" FROM {isl}"
+            f'SELECT {part}, NULL, "__aj_lo", {enter_kind}, {1000 + i}, NULL'
+            + "".join(", " + c for c in null_carry)
+            + f" FROM {isl}"
         )
         parts.append(
-            f"SELECT {part}, NULL, \"__aj_hi\", 0, {2000 + i}, NULL"
-            + "".join(", " + c for c in null_carry) + f" FROM {isl}"
+            f'SELECT {part}, NULL, "__aj_hi", 0, {2000 + i}, NULL'
+            + "".join(", " + c for c in null_carry)
+            + f" FROM {isl}"
         )
     parts.append(
-        f"SELECT {', '.join(_label_keys(lookup))}, NULL, epoch_us(\"__aj_t\"), {label_kind}, "
-        f"-2, \"__aj_row\"" + "".join(", " + c for c in null_carry) + ' FROM "__aj_labels"'
+        f'SELECT {", ".join(_label_keys(lookup))}, NULL, epoch_us("__aj_t"), {label_kind}, '
+        f'-2, "__aj_row"' + "".join(", " + c for c in null_carry) + ' FROM "__aj_labels"'
     )
     union = r.cte(f"__aj_su{lookup.step}", "\n    UNION ALL ".join(parts))
 
     win = (
-        f"(PARTITION BY {part} ORDER BY \"__aj_p\", \"__aj_kind\" "
+        f'(PARTITION BY {part} ORDER BY "__aj_p", "__aj_kind" '
         "ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW)"
     )
     sums: dict[str, str] = {}
@@ -193,8 +196,8 @@ def _sweep(
     def running(name: str, x: str, window_index: int) -> str:
         if name not in sums:
             sums[name] = (
-                f"sum(CASE WHEN \"__aj_tag\" = -1 THEN {x} "
-                f"WHEN \"__aj_tag\" = {window_index} THEN -({x}) END) OVER {win}"
+                f'sum(CASE WHEN "__aj_tag" = -1 THEN {x} '
+                f'WHEN "__aj_tag" = {window_index} THEN -({x}) END) OVER {win}'
             )
         return f'"{name}"'
 
@@ -227,8 +230,8 @@ def _sweep(
                 outs.append(f"CASE WHEN {n} > 1 THEN sqrt({var}) END")
         elif v.agg == "count_distinct":
             sums[f"u{i}"] = (
-                f"sum(CASE WHEN \"__aj_tag\" = {1000 + i} THEN 1 "
-                f"WHEN \"__aj_tag\" = {2000 + i} THEN -1 END) OVER {win}"
+                f'sum(CASE WHEN "__aj_tag" = {1000 + i} THEN 1 '
+                f'WHEN "__aj_tag" = {2000 + i} THEN -1 END) OVER {win}'
             )
             outs.append(f'CAST(coalesce("u{i}", 0) AS BIGINT)')
         elif v.agg in ("min", "max"):
@@ -241,7 +244,7 @@ def _sweep(
         select.append(f'count("__aj_row") OVER {win} AS "__aj_rank"')
     swept = r.cte(
         f"__aj_sw{lookup.step}",
-        f"SELECT {part}, \"__aj_ord\", \"__aj_tag\", \"__aj_row\", \"__aj_p\""
+        f'SELECT {part}, "__aj_ord", "__aj_tag", "__aj_row", "__aj_p"'
         + "".join(", " + c for c in carry)
         + (", " + ", ".join(select) if select else "")
         + f"\n    FROM {union}",
@@ -273,28 +276,28 @@ def _islands(
     min_len = 2 if strict else 1
     iv = r.cte(
         f"__aj_iv{lookup.step}_{i}",
-        f"SELECT {part}, {x} AS \"__aj_x\", \"__aj_a\", \"__aj_sv\" + {w} AS \"__aj_b\"\n"
-        f"    FROM {base} WHERE {x} IS NOT NULL AND \"__aj_sv\" + {w} - \"__aj_a\" >= {min_len}",
+        f'SELECT {part}, {x} AS "__aj_x", "__aj_a", "__aj_sv" + {w} AS "__aj_b"\n'
+        f'    FROM {base} WHERE {x} IS NOT NULL AND "__aj_sv" + {w} - "__aj_a" >= {min_len}',
     )
     touch = ">=" if strict else ">"  # open intervals meeting at a point leave that point out
     prev = (
-        f"max(\"__aj_b\") OVER (PARTITION BY {part}, \"__aj_x\" ORDER BY \"__aj_a\", \"__aj_b\" "
+        f'max("__aj_b") OVER (PARTITION BY {part}, "__aj_x" ORDER BY "__aj_a", "__aj_b" '
         "ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING)"
     )
     flagged = r.cte(
         f"__aj_if{lookup.step}_{i}",
-        f"SELECT *, CASE WHEN {prev} IS NULL OR \"__aj_a\" {touch} {prev} THEN 1 ELSE 0 END "
-        f"AS \"__aj_new\"\n    FROM {iv}",
+        f'SELECT *, CASE WHEN {prev} IS NULL OR "__aj_a" {touch} {prev} THEN 1 ELSE 0 END '
+        f'AS "__aj_new"\n    FROM {iv}',
     )
     numbered = r.cte(
         f"__aj_in{lookup.step}_{i}",
-        f"SELECT *, sum(\"__aj_new\") OVER (PARTITION BY {part}, \"__aj_x\" ORDER BY "
-        f"\"__aj_a\", \"__aj_b\" ROWS UNBOUNDED PRECEDING) AS \"__aj_isl\"\n    FROM {flagged}",
+        f'SELECT *, sum("__aj_new") OVER (PARTITION BY {part}, "__aj_x" ORDER BY '
+        f'"__aj_a", "__aj_b" ROWS UNBOUNDED PRECEDING) AS "__aj_isl"\n    FROM {flagged}',
     )
     return r.cte(
         f"__aj_is{lookup.step}_{i}",
-        f"SELECT {part}, min(\"__aj_a\") AS \"__aj_lo\", max(\"__aj_b\") AS \"__aj_hi\"\n"
-        f"    FROM {numbered} GROUP BY {part}, \"__aj_x\", \"__aj_isl\"",
+        f'SELECT {part}, min("__aj_a") AS "__aj_lo", max("__aj_b") AS "__aj_hi"\n'
+        f'    FROM {numbered} GROUP BY {part}, "__aj_x", "__aj_isl"',
     )
 
 
@@ -316,17 +319,17 @@ def _with_extrema(
     # lo = labels before a row's entry, hi = labels before its exit (ranks are 0-based)
     spans = r.cte(
         f"__aj_sp{lookup.step}",
-        f"SELECT {ekeys}, x.\"__aj_tag\" AS \"__aj_j\", e.\"__aj_rank\" AS \"__aj_lo\", "
-        f"x.\"__aj_rank\" AS \"__aj_hi\"{carry}\n"
-        f"    FROM {swept} AS e JOIN {swept} AS x ON x.\"__aj_ord\" = e.\"__aj_ord\" "
-        f"AND x.\"__aj_tag\" >= 0 AND x.\"__aj_tag\" < 1000\n"
-        f"    WHERE e.\"__aj_tag\" = -1 AND x.\"__aj_rank\" > e.\"__aj_rank\"",
+        f'SELECT {ekeys}, x."__aj_tag" AS "__aj_j", e."__aj_rank" AS "__aj_lo", '
+        f'x."__aj_rank" AS "__aj_hi"{carry}\n'
+        f'    FROM {swept} AS e JOIN {swept} AS x ON x."__aj_ord" = e."__aj_ord" '
+        f'AND x."__aj_tag" >= 0 AND x."__aj_tag" < 1000\n'
+        f'    WHERE e."__aj_tag" = -1 AND x."__aj_rank" > e."__aj_rank"',
     )
     lv = r.cte(
         f"__aj_lv{lookup.step}",
-        f"SELECT *, (\"__aj_lo\" + (1 << \"__aj_l\") - 1) >> \"__aj_l\" AS \"__aj_la\", "
-        f"\"__aj_hi\" >> \"__aj_l\" AS \"__aj_ra\"\n    FROM (SELECT *, unnest(range(0, "
-        f"CAST(floor(log2(\"__aj_hi\" - \"__aj_lo\")) AS BIGINT) + 2)) AS \"__aj_l\" "
+        f'SELECT *, ("__aj_lo" + (1 << "__aj_l") - 1) >> "__aj_l" AS "__aj_la", '
+        f'"__aj_hi" >> "__aj_l" AS "__aj_ra"\n    FROM (SELECT *, unnest(range(0, '
+        f'CAST(floor(log2("__aj_hi" - "__aj_lo")) AS BIGINT) + 2)) AS "__aj_l" '
         f"FROM {spans})",
     )
     aggs = []
@@ -334,35 +337,33 @@ def _with_extrema(
         aggs.append(f'{v.agg}("__aj_v{cols.index(v.column)}") AS "__aj_b{i}"')
     blocks = r.cte(
         f"__aj_bk{lookup.step}",
-        f"SELECT {part}, \"__aj_j\", \"__aj_l\", \"__aj_idx\", {', '.join(aggs)}\n    FROM ("
-        f"SELECT *, \"__aj_la\" AS \"__aj_idx\" FROM {lv} WHERE \"__aj_la\" < \"__aj_ra\" "
-        f"AND \"__aj_la\" % 2 = 1\n    UNION ALL SELECT *, \"__aj_ra\" - 1 FROM {lv} "
-        f"WHERE \"__aj_la\" < \"__aj_ra\" AND \"__aj_ra\" % 2 = 1)\n"
-        f"    GROUP BY {part}, \"__aj_j\", \"__aj_l\", \"__aj_idx\"",
+        f'SELECT {part}, "__aj_j", "__aj_l", "__aj_idx", {", ".join(aggs)}\n    FROM ('
+        f'SELECT *, "__aj_la" AS "__aj_idx" FROM {lv} WHERE "__aj_la" < "__aj_ra" '
+        f'AND "__aj_la" % 2 = 1\n    UNION ALL SELECT *, "__aj_ra" - 1 FROM {lv} '
+        f'WHERE "__aj_la" < "__aj_ra" AND "__aj_ra" % 2 = 1)\n'
+        f'    GROUP BY {part}, "__aj_j", "__aj_l", "__aj_idx"',
     )
     # a label of rank r sits in block (level, r >> level) on every level up to log2(labels)
     labels = r.cte(
         f"__aj_lr{lookup.step}",
-        f"SELECT *, unnest(range(0, CAST(floor(log2(greatest(\"__aj_n\", 1))) AS BIGINT) + 2)) "
-        f"AS \"__aj_l\"\n    FROM (SELECT {part}, \"__aj_row\", \"__aj_rank\" - 1 AS \"__aj_r\", "
-        f"max(\"__aj_rank\") OVER (PARTITION BY {part}) AS \"__aj_n\"\n"
-        f"    FROM {swept} WHERE \"__aj_tag\" = -2)",
+        f'SELECT *, unnest(range(0, CAST(floor(log2(greatest("__aj_n", 1))) AS BIGINT) + 2)) '
+        f'AS "__aj_l"\n    FROM (SELECT {part}, "__aj_row", "__aj_rank" - 1 AS "__aj_r", '
+        f'max("__aj_rank") OVER (PARTITION BY {part}) AS "__aj_n"\n'
+        f'    FROM {swept} WHERE "__aj_tag" = -2)',
     )
     picks = []
     for i, v in ext:
         j = windows.index(v.over_us)
-        picks.append(
-            f'{v.agg}(CASE WHEN b."__aj_j" = {j} THEN b."__aj_b{i}" END) AS "__aj_a{i}"'
-        )
+        picks.append(f'{v.agg}(CASE WHEN b."__aj_j" = {j} THEN b."__aj_b{i}" END) AS "__aj_a{i}"')
     on = " AND ".join(f"b.{k} = l.{k}" for k in keys)
     found = r.cte(
         f"__aj_ex{lookup.step}",
-        f"SELECT l.\"__aj_row\", {', '.join(picks)}\n    FROM {labels} AS l JOIN {blocks} AS b "
-        f"ON {on} AND b.\"__aj_l\" = l.\"__aj_l\" "
-        f"AND b.\"__aj_idx\" = l.\"__aj_r\" >> l.\"__aj_l\"\n    GROUP BY l.\"__aj_row\"",
+        f'SELECT l."__aj_row", {", ".join(picks)}\n    FROM {labels} AS l JOIN {blocks} AS b '
+        f'ON {on} AND b."__aj_l" = l."__aj_l" '
+        f'AND b."__aj_idx" = l."__aj_r" >> l."__aj_l"\n    GROUP BY l."__aj_row"',
     )
     picked = "".join(f', x."__aj_a{i}"' for i, _ in ext)
     return (
         f"SELECT t.*{picked}\n    FROM ({body}) AS t "
-        f"LEFT JOIN {found} AS x ON x.\"__aj_row\" = t.\"__aj_row\""
+        f'LEFT JOIN {found} AS x ON x."__aj_row" = t."__aj_row"'
     )

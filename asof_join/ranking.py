@@ -361,7 +361,8 @@ GROUP BY e;
 """
 
 _UNIFORM_ELIGIBLE = "it.s + 1"
-_POPULAR_ELIGIBLE = "greatest(it.s, first.f) + 1"  # null (never) without an interaction
+# null (never a candidate) without an interaction; DuckDB's greatest() would skip the null
+_POPULAR_ELIGIBLE = "CASE WHEN first.f IS NOT NULL THEN greatest(it.s, first.f) + 1 END"
 
 # Per group: n = candidates at t; excluded = candidates the group may not draw (the seen
 # ones when exclude_seen, and its own item); need = min(per_positive, n - excluded).

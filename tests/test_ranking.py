@@ -70,7 +70,7 @@ def _pools(
         else:
             weight = np.ones(len(cand), dtype=np.int64)
         ok &= weight > 0
-        out.append({int(i): int(w) for i, w in zip(cand[ok], weight[ok])})
+        out.append({int(i): int(w) for i, w in zip(cand[ok], weight[ok], strict=True)})
     return out
 
 
@@ -273,20 +273,35 @@ def test_heavy_user_and_tiny_pools_use_enumeration() -> None:
     # one user who has seen 95 of 100 items: rejection draws rarely succeed
     items = pd.DataFrame({"item": np.arange(100), "t": [T0] * 100})
     history = pd.DataFrame(
-        {"user": 1, "item": np.arange(95), "t": T0 + HOUR + np.arange(95) * HOUR}
+        {
+            "user": 1,
+            "item": np.arange(95),
+            "t": T0 + HOUR + np.arange(95) * HOUR,
+            "amount": np.arange(95.0),
+        }
     )
     out = aj.sample_negatives(
         history, items, user="user", item="item", time="t", per_positive=10, seed=2
     )
     last = out[(out["group_id"] == 94) & (out["label"] == 0)]["item"]
     assert sorted(last) == [95, 96, 97, 98, 99]
+    # others bought every item once, early: popularity weights exist for all of them
+    others = pd.DataFrame({"user": np.arange(100) + 2, "item": np.arange(100), "t": T0 + HOUR / 2})
+    log = pd.concat([history[["user", "item", "t"]], others], ignore_index=True)
     for sampler in ("uniform", "popular"):
         out = aj.sample_negatives(
-            history, items, user="user", item="item", time="t", per_positive=3, sampler=sampler
+            history,
+            items,
+            user="user",
+            item="item",
+            time="t",
+            per_positive=3,
+            sampler=sampler,
+            interactions=log,
         )
-        pools = _pools(history, items, popular=sampler == "popular", exclude_seen=True)
-        history_with_amount = history.assign(amount=np.nan)
-        _check(out.assign(amount=np.nan), history_with_amount, pools, 3)
+        pools = _pools(history, items, popular=sampler == "popular", exclude_seen=True, log=log)
+        assert [len(p) for p in pools[-3:]] == [7, 6, 5]
+        _check(out, history, pools, 3)
 
 
 def test_interactions_log_for_seen() -> None:
@@ -364,7 +379,7 @@ def test_label_types_kept() -> None:
         ({"item_time": "listed"}, aj.ColumnNotFoundError, "'listed' (its item_time)"),
         ({"label_column": "amount"}, aj.SpecError, "already has a column 'amount'"),
         ({"context": ["nope"]}, aj.ColumnNotFoundError, "'nope'"),
-        ({"time": "amount"}, aj.TimeTypeError, "not a timestamp or date"),
+        ({"time": "amount", "item_time": "t"}, aj.TimeTypeError, "not a timestamp or date"),
     ],
 )
 def test_argument_errors(kwargs: dict[str, Any], error: type[Exception], text: str) -> None:

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 __version__ = "0.1.0"
 
+from .audit import AuditReport, Finding, Rule, Severity, audit
+from .backfill import BackfillResult, backfill
 from .build import TrainingSet, build
 from .errors import (
     AsofJoinError,
@@ -24,13 +26,18 @@ from .splits import split_by_time
 
 __all__ = [
     "AsofJoinError",
+    "AuditReport",
+    "BackfillResult",
     "ColumnNotFoundError",
     "Entity",
     "EventTable",
+    "Finding",
     "InputError",
     "KeyTypeMismatchError",
     "Latest",
     "NullTimeError",
+    "Rule",
+    "Severity",
     "SpecError",
     "TimeTypeError",
     "Trailing",
@@ -40,6 +47,8 @@ __all__ = [
     "UnreadableInputError",
     "UnsupportedByEngineError",
     "__version__",
+    "audit",
+    "backfill",
     "build",
     "load_spec",
     "sample_negatives",

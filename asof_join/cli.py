@@ -75,7 +75,68 @@ def _parser() -> argparse.ArgumentParser:
     _add_data_option(sql)
     sql.set_defaults(run=_sql)
 
-    # TODO(cli): `audit` (exit 1 on findings) and `backfill` subcommands go here.
+    audit = sub.add_parser(
+        "audit",
+        help="audit a training set for leakage (exit 1 when findings reach --fail-on)",
+        description="Check a training set made by any tool against its spec: from its "
+        "provenance columns when present, else by recomputing from the spec's tables. Exit 0 "
+        "clean, 1 findings at or above --fail-on, 2 the audit could not run.",
+    )
+    audit.add_argument("train", metavar="TRAIN", help="the training set: Parquet or CSV file")
+    audit.add_argument("--spec", required=True, metavar="SPEC", help="YAML or JSON spec file")
+    audit.add_argument("--json", metavar="FILE", help="also write the report as JSON to FILE")
+    audit.add_argument(
+        "--fail-on",
+        choices=["error", "warning"],
+        default="error",
+        help="lowest severity that exits 1 (default: error)",
+    )
+    _add_data_option(audit)
+    audit.add_argument("--label", metavar="COLUMN", help="binary label column (label_proxy)")
+    audit.add_argument(
+        "--split", metavar="COLUMN", help="split column (default: 'split' when present)"
+    )
+    audit.add_argument(
+        "--gap", default="0s", metavar="DURATION", help="gap between splits, e.g. 1d (default 0s)"
+    )
+    audit.add_argument(
+        "--recompute", action="store_true", help="recompute features that have provenance too"
+    )
+    audit.add_argument("--memory-limit", metavar="SIZE", help="DuckDB memory limit, e.g. 2GB")
+    audit.add_argument("--threads", type=int, metavar="N", help="DuckDB threads")
+    audit.set_defaults(run=_audit)
+
+    backfill = sub.add_parser(
+        "backfill",
+        help="write the features as of each time on a grid, as hive partitions",
+        description="Write DIR/as_of=<T>/part-0.parquet for each T from --start to --end "
+        "(inclusive) every --every, one row per entity key, and DIR/_manifest.json. "
+        "Finished partitions are skipped; a killed run can simply be started again.",
+    )
+    backfill.add_argument("spec", metavar="SPEC", help="YAML or JSON spec file (its features)")
+    backfill.add_argument("--start", required=True, metavar="TIME", help="first snapshot time")
+    backfill.add_argument("--end", required=True, metavar="TIME", help="last snapshot time")
+    backfill.add_argument("--every", default="1d", metavar="DURATION", help="step (default 1d)")
+    backfill.add_argument("-o", "--output", required=True, metavar="DIR", help="output folder")
+    backfill.add_argument(
+        "--population", metavar="FILE", help="Parquet/CSV of the keys to write at every time"
+    )
+    backfill.add_argument(
+        "--overwrite", action="store_true", help="replace a folder written for another spec"
+    )
+    _add_data_option(backfill)
+    backfill.add_argument("--chunk", type=int, metavar="N", help="snapshot times per query")
+    backfill.add_argument("--wait", action="store_true", help="wait for a run on the same DIR")
+    backfill.add_argument(
+        "--progress",
+        action=argparse.BooleanOptionalAction,
+        default=None,
+        help="progress bar (default: when stderr is a terminal)",
+    )
+    backfill.add_argument("--memory-limit", metavar="SIZE", help="DuckDB memory limit, e.g. 2GB")
+    backfill.add_argument("--temp-dir", metavar="DIR", help="where DuckDB spills")
+    backfill.add_argument("--threads", type=int, metavar="N", help="DuckDB threads")
+    backfill.set_defaults(run=_backfill)
 
     schema = sub.add_parser("schema", help="print the JSON Schema of the spec file format")
     schema.set_defaults(run=_schema)
@@ -129,6 +190,53 @@ def _sql(args: argparse.Namespace) -> int:
     # build() is lazy: it reads schemas and checks inputs; nothing runs until the result is read.
     train = aj.build(spec, data=_bindings(spec, args.data), engine=args.engine, spark=spark)
     print(train.sql)
+    return EXIT_OK
+
+
+def _audit(args: argparse.Namespace) -> int:
+    spec = aj.load_spec(args.spec)
+    try:
+        report = aj.audit(
+            args.train,
+            spec,
+            data=_bindings(spec, args.data),
+            label=args.label,
+            split=args.split,
+            gap=args.gap,
+            recompute=args.recompute,
+            memory_limit=args.memory_limit,
+            threads=args.threads,
+        )
+    except (aj.AsofJoinError, OSError):
+        raise
+    except Exception as exc:  # exit 1 means findings: any other failure must not look like one
+        msg = f"the audit could not run: {type(exc).__name__}: {exc}"
+        raise UsageError(msg) from None
+    print(report)
+    if args.json is not None:
+        Path(args.json).write_text(report.to_json() + "\n", encoding="utf-8")
+    return EXIT_FINDINGS if report.fails(args.fail_on) else EXIT_OK
+
+
+def _backfill(args: argparse.Namespace) -> int:
+    spec = aj.load_spec(args.spec)
+    result = aj.backfill(
+        spec,
+        data=_bindings(spec, args.data),
+        start=args.start,
+        end=args.end,
+        every=args.every,
+        out=args.output,
+        population=args.population,
+        overwrite=args.overwrite,
+        memory_limit=args.memory_limit,
+        temp_dir=args.temp_dir,
+        threads=args.threads,
+        progress=args.progress,
+        chunk=args.chunk,
+        wait=args.wait,
+    )
+    print(result)
     return EXIT_OK
 
 

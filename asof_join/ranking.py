@@ -146,7 +146,7 @@ def sample_negatives(
         >>> out = sample_negatives(orders, items, user="customer_id", item="plant_id", time="t",
         ...                        per_positive=5)
         >>> out[["group_id", "plant_id", "label"]].values.tolist()  # plant 4 is not listed yet
-        [[0, 1, 1], [0, 3, 0], [0, 2, 0], [1, 2, 1], [1, 3, 0]]
+        [[0, 1, 1], [0, 2, 0], [0, 3, 0], [1, 2, 1], [1, 3, 0]]
     """
     kind = frame_kind(positives, "sample_negatives(positives)")
     items_kind = frame_kind(items, "sample_negatives(items)")

@@ -113,7 +113,7 @@ def _table_rows(
         else:
             k = s + pd.Timedelta(delay)
         k = max(k, s)  # a row is never known before it is valid
-        cells = {name: _py(value) for name, value in record.items()}
+        cells = {str(name): _py(value) for name, value in record.items()}
         rows.append(_Row(position, _key([record[c] for c in key_columns]), s, k, cells))
     return rows
 
@@ -238,6 +238,7 @@ def oracle_build(
             chosen = _newest(matching)
             if (
                 chosen is not None
+                and t is not None
                 and feature.max_age is not None
                 and t - chosen.s > pd.Timedelta(feature.max_age)
             ):

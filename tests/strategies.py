@@ -9,6 +9,7 @@ from typing import TYPE_CHECKING, Any, Protocol, TypeVar
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 from hypothesis import strategies as st
 
 if TYPE_CHECKING:
@@ -335,9 +336,7 @@ def _time_kinds(d: Draw, n: int, enabled: bool) -> list[str]:
     if not enabled:
         return ["naive_us"] * n
     options = ["naive_us", "naive_ns", "naive_s", "date", *(f"aware:{z}" for z in ZONES)]
-    kinds = [d.choice([k for k in options if k != "date"])]  # labels are never dates here
-    kinds += [d.choice(options) for _ in range(n - 1)]
-    return kinds
+    return [d.choice(options) for _ in range(n)]
 
 
 def make_recipe(
@@ -395,7 +394,7 @@ def make_recipe(
         timezone = d.choice(ZONES)  # allowed even when nothing is mixed
 
     sources = [t.name for t in tables]
-    if not keep and not labels.time_kind.startswith("date"):
+    if not keep:
         sources.append("labels")  # features over the label table itself
     allowed = [k for k, on in (("latest", latest), ("trailing", trailing)) if on]
     features = []
@@ -461,14 +460,14 @@ def _instant(minutes: int, recipe: CaseRecipe) -> pd.Timestamp:
 def _time_column(minutes: list[int | None], kind: str, recipe: CaseRecipe, d: Draw) -> pd.Series:
     """Render minutes on the shared clock in a table's time kind."""
     if kind == "date":
-        # midnight of BASE's day, or up to two days before: many ties, and edges at minute 0
-        return pd.Series(
-            [
-                None if x is None else (BASE - pd.Timedelta(days=(20 - x) // 8)).date()
-                for x in minutes
-            ],
-            dtype=object,
-        )
+        # midnight of BASE's day, up to two days before or (labels only) the day after:
+        # many ties, and edges at minute 0
+        dates = [
+            None if x is None else (BASE - pd.Timedelta(days=(20 - x) // 8)).date() for x in minutes
+        ]
+        if any(x is not None for x in dates) and d.boolean(0.5):
+            return pd.Series(dates, dtype=object)  # plain datetime.date objects
+        return pd.Series(dates, dtype=pd.ArrowDtype(pa.date32()))  # typed even when empty
     if kind.startswith("aware:"):
         zone = kind.split(":", 1)[1]
         stamps = [None if x is None else _instant(x, recipe).tz_convert(zone) for x in minutes]
@@ -514,8 +513,10 @@ def _table_frame(
     columns[table.time] = _time_column(minutes, table.time_kind, recipe, d)
     if table.known_at is not None:
         # known before valid (clipped to it), equal, or later: a correction landing late
-        known = [d.integer(0, 20) if x is None else x + d.integer(-3, 6) for x in minutes]
-        columns[table.known_at] = _time_column(known, table.time_kind, recipe, d)  # type: ignore[arg-type]
+        known: list[int | None] = [
+            d.integer(0, 20) if x is None else x + d.integer(-3, 6) for x in minutes
+        ]
+        columns[table.known_at] = _time_column(known, table.time_kind, recipe, d)
     p = table.null_value_p
     ints = [_maybe(d, p, d.integer(-2, 5)) for _ in range(n)]
     columns["v_int"] = _int_column(ints, "Int64" if p else "int64")

@@ -18,7 +18,7 @@ from tests.strategies import Case, NumpyDraw, build_spec, cases, make_data, make
 aj = pytest.importorskip("asof_join")
 
 #: Examples per hypothesis test; raise it for a longer soak: ASOF_JOIN_EXAMPLES=5000 pytest ...
-EXAMPLES = int(os.environ.get("ASOF_JOIN_EXAMPLES", "300"))
+EXAMPLES = int(os.environ.get("ASOF_JOIN_EXAMPLES", "250"))
 #: Seeded cases for the numpy loop below (configs x data sets per config).
 SEEDED_CONFIGS = int(os.environ.get("ASOF_JOIN_SEEDED_CONFIGS", "100"))
 SEEDED_PER_CONFIG = int(os.environ.get("ASOF_JOIN_SEEDED_PER_CONFIG", "12"))

@@ -44,6 +44,7 @@ class DuckDBEngine:
     ) -> None:
         self.con = connection if connection is not None else duckdb.connect()
         self.fetch("SET TimeZone = 'UTC'")
+        self.fetch("SET enable_progress_bar = false")
         self.fetch("SET autoinstall_known_extensions = false")
         self.fetch("SET autoload_known_extensions = false")
         if memory_limit is not None:

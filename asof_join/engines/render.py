@@ -29,6 +29,9 @@ class SqlRenderer:
     SUPPORTS_ASOF_JOIN: bool = True
     #: the dialect has QUALIFY (else a subquery filters)
     SUPPORTS_QUALIFY: bool = True
+    #: the dialect zips two ordered inputs row by row (POSITIONAL JOIN): label columns then skip
+    #: the joins and the final sort
+    SUPPORTS_POSITIONAL_JOIN: bool = True
 
     def __init__(self, plan: Plan, sources: dict[str, str]) -> None:
         self.plan = plan
@@ -109,17 +112,36 @@ class SqlRenderer:
                     exprs[out.name] = columns[(out.slot, out.index)]
         # declared output order
         projections = [f"{exprs[out.name]} AS {q(out.name)}" for out in self.plan.outputs]
+        if self.SUPPORTS_POSITIONAL_JOIN:
+            # narrow rows (position, features) go through the joins and the final sort; the
+            # label columns are read once more, in input order, and zipped on by position
+            select = _join(['l."__aj_row"', *projections], ",\n       ")
+            body = f"SELECT {select}\nFROM {labels} AS l\n" + "\n".join(joins)
+            feats = self.cte("__aj_features", body + '\nORDER BY l."__aj_row"')
+            outs = [f"f.{q(out.name)}" for out in self.plan.outputs]
+            cols = [f"s.{q(c)}" for c in self.plan.labels.columns] + outs
+            final = (
+                f"SELECT {_join(cols, ', ')}\n"
+                f"FROM {self.source(self.plan.labels.table)} AS s POSITIONAL JOIN {feats} AS f"
+            )
+            return f"WITH {self._with_sql()}\n{final}"
         label_cols = [f"l.{q(c)}" for c in self.plan.labels.columns]
         select = _join(label_cols + projections, ",\n       ")
-        with_sql = _join([f"{q(n)} AS (\n    {b}\n)" for n, b in self.ctes], ",\n")
         body = f"SELECT {select}\nFROM {labels} AS l\n" + "\n".join(joins)
-        return f'WITH {with_sql}\n{body}\nORDER BY l."__aj_row"'
+        return f'WITH {self._with_sql()}\n{body}\nORDER BY l."__aj_row"'
+
+    def _with_sql(self) -> str:
+        return _join([f"{q(n)} AS (\n    {b}\n)" for n, b in self.ctes], ",\n")
 
     def render_labels(self) -> str:
         lab = self.plan.labels
+        if self.SUPPORTS_POSITIONAL_JOIN:
+            picked = "".join(f"{q(c)}, " for c in lab.keys)
+        else:
+            picked = "*, "
         body = (
             f'SELECT {self.row_number_in_input_order()} - 1 AS "__aj_row", '
-            f'{self.time_expr(lab.time)} AS "__aj_t", *\n    FROM {self.source(lab.table)}'
+            f'{picked}{self.time_expr(lab.time)} AS "__aj_t"\n    FROM {self.source(lab.table)}'
         )
         return self.cte("__aj_labels", body)
 
@@ -156,8 +178,11 @@ class SqlRenderer:
         if lookup.reduction == Reduction.VALID:
             # ties on (key, valid time): the last row in input order wins
             picks = [self.arg_max(v, '"__aj_ord"') + f" AS {v}" for v in vals]
+            at = '"__aj_s"'
+            if lookup.delay_us:
+                at = f'"__aj_s" + {self.micros(lookup.delay_us)}'
             body = (
-                f'SELECT {_join(keys)}, "__aj_s", max("__aj_kt") AS "__aj_at"'
+                f'SELECT {_join(keys)}, "__aj_s", {at} AS "__aj_at"'
                 + "".join(", " + p for p in picks)
                 + f'\n    FROM {rows} GROUP BY {_join(keys)}, "__aj_s"'
             )

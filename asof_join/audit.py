@@ -1,0 +1,1672 @@
+"""Leakage audit: checks a training set made by any tool against its spec; returns an AuditReport.
+
+Rules and their severities (ids are part of the interface, see ``Rule``):
+
+=========================  ========  ==========================================================
+rule                       severity  fires when
+=========================  ========  ==========================================================
+``future_row``             error     a supplied row's valid time is at or after the label time
+                                     (after it, for a table declared ``inclusive=True``)
+``not_yet_known``          error     the supplied row was valid before the label time but its
+                                     known time is at or after it (after it when inclusive)
+``value_mismatch``         error     the value differs from the point-in-time value and equals
+                                     the value of a row not yet visible at the label time
+                                     (``cause="later_row"``; for trailing features: equals the
+                                     aggregate that counts rows not yet visible,
+                                     ``cause="not_yet_visible_rows"``): leakage
+``value_mismatch``         warning   the value differs and no later row explains it
+                                     (``cause="unknown"``)
+``stale_value``            warning   the supplied row is older than the feature's ``max_age``
+                                     (the point-in-time value is null): train/serve skew
+``label_proxy``            error     one feature separates a binary label almost perfectly
+``split_overlap``          error     a later split's rows start at or before an earlier
+                                     split's last label time plus the gap
+``ambiguous_source_rows``  warning   source rows share key, valid and known time but differ in
+                                     value: the build keeps the last in input order
+``known_before_valid``     warning   a source row's known time is before its valid time (the
+                                     known time is then taken as the valid time)
+=========================  ========  ==========================================================
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import decimal
+import enum
+import json
+import math
+import os
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from .durations import format_duration, parse_duration, to_micros
+from .engines.sql import Params, quote_ident
+from .errors import (
+    ColumnNotFoundError,
+    InputError,
+    SpecError,
+    TimeTypeError,
+    UnknownTableError,
+    UnreadableInputError,
+)
+from .plan import LatestLookup
+from .spec import Latest, Trailing, TrainingSetSpec
+
+if TYPE_CHECKING:
+    import duckdb
+    import pandas as pd
+
+    from .build import TrainingSet
+    from .plan import Plan, TrailingLookup
+    from .spec import Feature
+
+__all__ = [
+    "ABS_TOLERANCE",
+    "AGE_BINS",
+    "PROXY_AUC",
+    "PROXY_EQUAL_SHARE",
+    "PROXY_MIN_CLASS_ROWS",
+    "REL_TOLERANCE",
+    "RULE_SEVERITY",
+    "AgeHistogram",
+    "AuditReport",
+    "Cause",
+    "Finding",
+    "Rule",
+    "Severity",
+    "audit",
+    "read_frame",
+]
+
+q = quote_ident
+
+#: Floats are equal when ``|a - b| <= max(ABS_TOLERANCE, REL_TOLERANCE * max(|a|, |b|))``.
+REL_TOLERANCE = 1e-9
+ABS_TOLERANCE = 1e-12
+#: label_proxy: ROC AUC at or above this (or at or below 1 - this) for a numeric feature ...
+PROXY_AUC = 0.99
+#: ... or the feature equals the label on at least this share of the labelled rows ...
+PROXY_EQUAL_SHARE = 0.99
+#: ... measured only when each label class has at least this many rows with a feature value.
+PROXY_MIN_CLASS_ROWS = 10
+
+_DAY_US = 86_400_000_000
+#: Chart bins of the supplying row's age at label time (t - valid time): (label, upper bound in
+#: microseconds, inclusive). The first bin holds rows from the label's instant or later.
+AGE_BINS: tuple[tuple[str, int | None], ...] = (
+    ("<=0", 0),
+    ("1m", 60_000_000),
+    ("10m", 600_000_000),
+    ("1h", 3_600_000_000),
+    ("6h", 21_600_000_000),
+    ("1d", _DAY_US),
+    ("7d", 7 * _DAY_US),
+    ("30d", 30 * _DAY_US),
+    ("90d", 90 * _DAY_US),
+    ("1y", 365 * _DAY_US),
+    (">1y", None),
+)
+_EDGES = np.array([b for _, b in AGE_BINS if b is not None], dtype=np.int64)
+
+#: Name the label table gets while the audit recomputes (it appears in error messages).
+_FRAME = "audited frame"
+_RESERVED = "__aj_"
+_INT_TYPES = frozenset(
+    {"TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT"}
+    | {"UTINYINT", "USMALLINT", "UINTEGER", "UBIGINT", "UHUGEINT"}
+)
+_NUMERIC = frozenset({"int", "float", "bool"})
+
+
+class Severity(str, enum.Enum):
+    """How bad a finding is. ``AuditReport.ok`` is False when any finding is an error."""
+
+    ERROR = "error"  #: leakage, or a set that cannot be trusted
+    WARNING = "warning"  #: a defect that is not proven leakage
+
+    @property
+    def rank(self) -> int:
+        """2 for error, 1 for warning: a finding reaches a level when its rank is at least it."""
+        return 2 if self is Severity.ERROR else 1
+
+
+class Rule(str, enum.Enum):
+    """The audit's rule ids (the values are part of the interface)."""
+
+    FUTURE_ROW = "future_row"
+    NOT_YET_KNOWN = "not_yet_known"
+    VALUE_MISMATCH = "value_mismatch"
+    STALE_VALUE = "stale_value"
+    LABEL_PROXY = "label_proxy"
+    SPLIT_OVERLAP = "split_overlap"
+    AMBIGUOUS_SOURCE_ROWS = "ambiguous_source_rows"
+    KNOWN_BEFORE_VALID = "known_before_valid"
+
+
+class Cause(str, enum.Enum):
+    """Why a ``value_mismatch`` happened, when the audit can tell."""
+
+    #: equals the value of a source row of the same key not yet visible at the label time
+    LATER_ROW = "later_row"
+    #: (trailing) equals the aggregate over the window that also counts rows not yet visible
+    NOT_YET_VISIBLE_ROWS = "not_yet_visible_rows"
+    #: no later row or leaky window explains the value
+    UNKNOWN = "unknown"
+
+
+#: Each rule's severity; ``value_mismatch`` is an error only with a leak cause, else a warning.
+RULE_SEVERITY: dict[Rule, Severity] = {
+    Rule.FUTURE_ROW: Severity.ERROR,
+    Rule.NOT_YET_KNOWN: Severity.ERROR,
+    Rule.VALUE_MISMATCH: Severity.ERROR,
+    Rule.STALE_VALUE: Severity.WARNING,
+    Rule.LABEL_PROXY: Severity.ERROR,
+    Rule.SPLIT_OVERLAP: Severity.ERROR,
+    Rule.AMBIGUOUS_SOURCE_ROWS: Severity.WARNING,
+    Rule.KNOWN_BEFORE_VALID: Severity.WARNING,
+}
+_RULE_ORDER = {rule: i for i, rule in enumerate(Rule)}
+
+
+@dataclass(frozen=True)
+class Finding:
+    """One rule's result for one feature (or table, or pair of splits).
+
+    ``rows`` counts the offending rows and ``positions`` lists all of them, 0-based, in the
+    audited frame, except: for ``ambiguous_source_rows`` and ``known_before_valid`` they are
+    positions in the source table named by ``table``; ``label_proxy`` is a column-level finding
+    whose ``rows`` is the number of rows measured and whose ``positions`` is empty.
+    ``examples`` holds a few offending rows as dicts (``position``, ``key``, ``label_time``,
+    ``supplied``, ``point_in_time``, ``later_row_time``, ... as the rule has them).
+    """
+
+    rule: Rule
+    severity: Severity
+    feature: str | None
+    rows: int
+    positions: list[int]
+    examples: list[dict[str, Any]]
+    message: str = ""
+    table: str | None = None
+    cause: Cause | None = None
+    details: dict[str, Any] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        """The finding as plain JSON-ready values (enums as their ids)."""
+        return {
+            "rule": self.rule.value,
+            "severity": self.severity.value,
+            "feature": self.feature,
+            "table": self.table,
+            "cause": None if self.cause is None else self.cause.value,
+            "rows": self.rows,
+            "message": self.message,
+            "positions": list(self.positions),
+            "examples": _plain(self.examples),
+            "details": _plain(self.details),
+        }
+
+
+@dataclass(frozen=True)
+class AgeHistogram:
+    """Per feature: how old the supplying row was at label time, clean and flagged rows apart."""
+
+    feature: str
+    clean: tuple[int, ...]  #: rows per AGE_BINS bin that no rule flagged
+    flagged: tuple[int, ...]  #: rows per bin flagged by a rule of this feature
+    unplaced: int = 0  #: flagged rows whose supplying row is unknown (value_mismatch, unknown)
+
+    @property
+    def labels(self) -> tuple[str, ...]:
+        """The bins' labels (AGE_BINS)."""
+        return tuple(label for label, _ in AGE_BINS)
+
+
+@dataclass
+class AuditReport:
+    """What ``audit()`` found. Never raised: read ``ok`` or ``fails()`` to gate a pipeline."""
+
+    findings: list[Finding]
+    rows: int
+    #: feature -> how it was checked: "provenance", "recomputation", both, or "not checked"
+    checked: dict[str, str]
+    notes: list[str]
+    charts: dict[str, AgeHistogram]
+    fingerprint: str
+    label: str | None = None
+    split: str | None = None
+
+    @property
+    def ok(self) -> bool:
+        """False when any finding has severity ``error``."""
+        return not self.fails(Severity.ERROR)
+
+    def fails(self, at: Severity | str = Severity.ERROR) -> bool:
+        """True when some finding's severity reaches ``at`` ("error" or "warning")."""
+        level = Severity(at)
+        return any(f.severity.rank >= level.rank for f in self.findings)
+
+    def count(self, severity: Severity | str) -> int:
+        """How many findings have exactly this severity."""
+        level = Severity(severity)
+        return sum(f.severity is level for f in self.findings)
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row per finding: rule, severity, feature, table, cause, rows, message, examples."""
+        import pandas as pd
+
+        columns = ["rule", "severity", "feature", "table", "cause", "rows", "message", "examples"]
+        records = [{c: f.to_dict()[c] for c in columns} for f in self.findings]
+        return pd.DataFrame.from_records(records, columns=columns)
+
+    def to_dict(self) -> dict[str, Any]:
+        """The report as plain JSON-ready values."""
+        return {
+            "ok": self.ok,
+            "rows": self.rows,
+            "fingerprint": self.fingerprint,
+            "label": self.label,
+            "split": self.split,
+            "errors": self.count(Severity.ERROR),
+            "warnings": self.count(Severity.WARNING),
+            "checked": dict(self.checked),
+            "findings": [f.to_dict() for f in self.findings],
+            "notes": list(self.notes),
+            "charts": {
+                name: {
+                    "bins": list(h.labels),
+                    "clean": list(h.clean),
+                    "flagged": list(h.flagged),
+                    "unplaced": h.unplaced,
+                }
+                for name, h in self.charts.items()
+            },
+        }
+
+    def to_json(self, *, indent: int | None = 2) -> str:
+        """The report as JSON text (every position listed; times as ISO 8601)."""
+        return json.dumps(self.to_dict(), indent=indent, ensure_ascii=False)
+
+    def __str__(self) -> str:
+        from .audit_render import render_text
+
+        return render_text(self)
+
+    def _repr_html_(self) -> str:
+        from .audit_render import render_html
+
+        return render_html(self)
+
+
+def audit(
+    frame: object,
+    spec: TrainingSetSpec,
+    data: Mapping[str, object] | None = None,
+    label: str | None = None,
+    split: str | None = None,
+    *,
+    gap: str | dt.timedelta = "0s",
+    split_names: Sequence[str] = ("train", "valid", "test"),
+    recompute: bool = False,
+    max_examples: int = 5,
+    memory_limit: str | None = None,
+    threads: int | None = None,
+) -> AuditReport:
+    """Audit a training set for leakage against its spec; findings are returned, never raised.
+
+    The frame may come from any tool: it must hold the label table's columns and every feature
+    column named as the spec names it. A latest feature whose ``<name>__time`` and
+    ``<name>__known_at`` columns are present (``build(..., provenance=True)``) is checked from
+    them alone: ``future_row``, ``not_yet_known``, ``stale_value``; no source data is needed.
+    Every other feature is checked by recomputation: the frame's label columns are bound as the
+    label table, the point-in-time values are rebuilt from ``data`` and compared (floats with
+    ``|a - b| <= max(1e-12, 1e-9 * max(|a|, |b|))``; null equals null; NaN counts as null). A
+    differing value that equals a row of the same key not yet visible at the label time is a
+    ``value_mismatch`` error with cause ``later_row``; one older than ``max_age`` is a
+    ``stale_value``; anything else is a ``value_mismatch`` warning of unknown cause. The
+    comparison and the later-row search run in DuckDB. The source rules
+    (``ambiguous_source_rows``, ``known_before_valid``) run over every bound table.
+
+    ``label_proxy`` (with ``label=``, a column with two distinct values) fires for a feature
+    whose ROC AUC against the label (``sklearn.metrics.roc_auc_score``; numeric and boolean
+    features) is >= 0.99 or <= 0.01, or that equals the label on >= 99% of the labelled rows;
+    each class needs at least 10 rows with a feature value. Without scikit-learn the AUC measure
+    is skipped with a note. ``split_overlap`` (a ``split`` column, or ``split=`` naming one;
+    rows named ``"gap"`` are ignored) fires for rows of a later split at or before an earlier
+    split's last label time plus ``gap``; splits are ordered as in ``split_names``, others by
+    their first label time.
+
+    Args:
+        frame: pandas, polars or pyarrow frame, DuckDB relation, or a Parquet/CSV path.
+        spec: the spec the set claims to follow.
+        data: table name -> frame or path, as for ``build()``; tables' ``path:`` fill the rest.
+        label: the binary label column, for ``label_proxy``.
+        split: the split column, for ``split_overlap`` (default: ``"split"`` when present).
+        gap: the gap each earlier split must keep before a later one (default none).
+        split_names: the order of the splits.
+        recompute: also recompute features that have provenance columns.
+        max_examples: examples kept per finding.
+        memory_limit: DuckDB memory limit for the recomputation, e.g. ``"2GB"``.
+        threads: DuckDB threads.
+
+    Returns:
+        An AuditReport: ``ok``, ``findings``, ``to_frame()``, ``to_json()``, ``str()``, HTML.
+
+    Raises:
+        SpecError: ``spec`` is not a TrainingSetSpec, or an argument is malformed.
+        InputError: the frame lacks a column the spec needs, a feature must be recomputed but
+            its table has no data, or the data does not fit the spec (as in ``build()``).
+
+    Example:
+        >>> import pandas as pd, asof_join as aj
+        >>> customer = aj.Entity("customer", keys=["customer_id"])
+        >>> orders = aj.EventTable("orders", time="at", entities=[customer])
+        >>> tiers = aj.EventTable("tiers", time="at", entities=[customer])
+        >>> spec = aj.TrainingSetSpec(labels=orders, features=[aj.Latest(tiers, ["tier"])])
+        >>> t = pd.DataFrame({"customer_id": [1, 1], "tier": ["seed", "bloom"],
+        ...                   "at": pd.to_datetime(["2024-01-01", "2024-01-05"])})
+        >>> train = pd.DataFrame({"customer_id": [1, 1], "tier": ["seed", "bloom"],
+        ...                       "at": pd.to_datetime(["2024-01-02", "2024-01-05"])})
+        >>> report = aj.audit(train, spec, data={"tiers": t})
+        >>> report.ok, [(f.rule.value, f.positions) for f in report.findings]
+        (False, [('value_mismatch', [1])])
+    """
+    if not isinstance(spec, TrainingSetSpec):
+        msg = f"audit() needs a TrainingSetSpec (or aj.load_spec(path)), got {type(spec).__name__}"
+        raise SpecError(msg)
+    try:
+        gap_us = to_micros(parse_duration(gap, what="gap"))
+    except ValueError as exc:
+        raise SpecError(str(exc)) from None
+    if isinstance(split_names, str):
+        msg = f"split_names must be a sequence of names, got the string {split_names!r}"
+        raise SpecError(msg)
+    table = read_frame(frame)
+    auditor = _Auditor(
+        spec,
+        table,
+        data,
+        label=label,
+        split=split,
+        gap_us=gap_us,
+        split_names=tuple(str(n) for n in split_names),
+        recompute=recompute,
+        max_examples=max(0, int(max_examples)),
+        memory_limit=memory_limit,
+        threads=threads,
+    )
+    return auditor.run()
+
+
+def read_frame(frame: object) -> pa.Table:
+    """A training set as a pyarrow Table: pandas, polars, pyarrow, DuckDB, or a file path."""
+    if isinstance(frame, (str, os.PathLike)):
+        return _read_path(os.fspath(frame))
+    if isinstance(frame, pa.Table):
+        return frame
+    if isinstance(frame, pa.RecordBatchReader):
+        return frame.read_all()
+    module = type(frame).__module__.split(".")[0]
+    name = type(frame).__name__
+    if module == "pandas" and name == "DataFrame":
+        return pa.Table.from_pandas(frame, preserve_index=False)
+    if module == "polars" and name in ("DataFrame", "LazyFrame"):
+        polars_frame: Any = frame
+        if name == "LazyFrame":
+            polars_frame = polars_frame.collect()
+        table: pa.Table = polars_frame.to_arrow()
+        return table
+    if module in ("duckdb", "_duckdb") and hasattr(frame, "to_arrow_table"):
+        relation: Any = frame
+        result: pa.Table = relation.to_arrow_table()
+        return result
+    msg = (
+        f"the audited frame is a {type(frame).__module__}.{name}; pass a pandas, polars or "
+        "pyarrow frame, a DuckDB relation, or a Parquet/CSV path"
+    )
+    raise InputError(msg)
+
+
+def _read_path(path: str) -> pa.Table:
+    import duckdb
+
+    if not Path(path).is_file():
+        msg = f"cannot read the training set {path!r}: no such file; check the path"
+        err = UnreadableInputError(msg)
+        err.value = path
+        raise err
+    is_csv = path.lower().endswith((".csv", ".tsv", ".txt", ".csv.gz", ".tsv.gz"))
+    con = duckdb.connect()
+    try:
+        con.execute("SET TimeZone = 'UTC'")
+        rel = con.read_csv(path) if is_csv else con.read_parquet(path)
+        table: pa.Table = rel.to_arrow_table()
+    except duckdb.Error as exc:
+        first = str(exc).splitlines()[0]
+        kind = "CSV" if is_csv else "Parquet"
+        msg = f"cannot read the training set {path!r} as {kind}: {first}; check the file"
+        err = UnreadableInputError(msg)
+        err.value = path
+        raise err from None
+    finally:
+        con.close()
+    return table
+
+
+# --- internals --------------------------------------------------------------------------------
+
+
+@dataclass
+class _Output:
+    """One feature column of the audited frame and how it is checked."""
+
+    name: str
+    feature: Feature
+    index: int  #: position among the feature's outputs
+    provenance: bool  #: the frame has <name>__time and <name>__known_at
+    recompute: bool = False
+    slot: int = -1  #: index of its expected columns (__aj_e<slot>) when recomputed
+
+    @property
+    def table(self) -> str:
+        return self.feature.table.name
+
+    @property
+    def is_latest(self) -> bool:
+        return isinstance(self.feature, Latest)
+
+    @property
+    def max_age_us(self) -> int | None:
+        if isinstance(self.feature, Latest) and self.feature.max_age is not None:
+            return to_micros(self.feature.max_age)
+        return None
+
+
+@dataclass
+class _Checked:
+    """Per output: rows each rule flagged and the chart, gathered while rules run."""
+
+    clean: np.ndarray = field(default_factory=lambda: np.zeros(len(AGE_BINS), dtype=np.int64))
+    flagged: np.ndarray = field(default_factory=lambda: np.zeros(len(AGE_BINS), dtype=np.int64))
+    unplaced: int = 0
+    charted: bool = False
+
+
+class _Auditor:
+    """Runs the rules over one frame in one DuckDB connection."""
+
+    def __init__(
+        self,
+        spec: TrainingSetSpec,
+        table: pa.Table,
+        data: Mapping[str, object] | None,
+        *,
+        label: str | None,
+        split: str | None,
+        gap_us: int,
+        split_names: tuple[str, ...],
+        recompute: bool,
+        max_examples: int,
+        memory_limit: str | None,
+        threads: int | None,
+    ) -> None:
+        import duckdb
+
+        self.spec = spec
+        self.table = table
+        self.data = dict(data or {})
+        self.label = label
+        self.split = split
+        self.gap_us = gap_us
+        self.split_names = split_names
+        self.force_recompute = recompute
+        self.max_examples = max_examples
+        self.memory_limit = memory_limit
+        self.threads = threads
+        self.con: duckdb.DuckDBPyConnection = duckdb.connect()
+        self.con.execute("SET TimeZone = 'UTC'")
+        self.findings: list[Finding] = []
+        self.notes: list[str] = []
+        self.outputs: list[_Output] = []
+        self.checks: dict[str, _Checked] = {}
+        self.plan: Plan | None = None
+        self.train: TrainingSet | None = None
+        self.sources: dict[str, str] = {}
+        self.bound: dict[str, object] = {}
+        self.label_columns: list[str] = []
+        self.frame_name = _FRAME
+        self.types: dict[str, str] = {}
+        self.source_types: dict[str, dict[str, str]] = {}
+        self.label_zone: str | None = None
+        self._keep: list[object] = []
+        self._auc: Any = None  #: sklearn's roc_auc_score once imported; False when missing
+
+    # -- driver ----------------------------------------------------------------------------
+
+    def run(self) -> AuditReport:
+        try:
+            self._resolve_columns()
+            self._bind_sources()
+            self._register()
+            for out in self.outputs:
+                self.checks[out.name] = _Checked()
+                if out.provenance:
+                    self._check_provenance(out)
+            self._check_recomputed()
+            self._check_sources()
+            self._check_label_proxy()
+            self._check_splits()
+        finally:
+            self.con.close()
+        return self._report()
+
+    def _report(self) -> AuditReport:
+        checked: dict[str, str] = {}
+        for out in self.outputs:
+            pairs = (("provenance", out.provenance), ("recomputation", out.recompute))
+            how = [m for m, on in pairs if on]
+            checked[out.name] = " and ".join(how) if how else "not checked"
+        unchecked = [n for n, how in checked.items() if how == "not checked"]
+        if unchecked:
+            self.notes.append(
+                f"not checked (no provenance columns and no data for their tables): "
+                f"{', '.join(unchecked)}; pass data= to recompute them"
+            )
+        charts = {
+            name: AgeHistogram(
+                name, tuple(int(x) for x in c.clean), tuple(int(x) for x in c.flagged), c.unplaced
+            )
+            for name, c in self.checks.items()
+            if c.charted
+        }
+        findings = sorted(
+            self.findings,
+            key=lambda f: (-f.severity.rank, _RULE_ORDER[f.rule], f.feature or "", f.table or ""),
+        )
+        return AuditReport(
+            findings=findings,
+            rows=self.table.num_rows,
+            checked=checked,
+            notes=self.notes,
+            charts=charts,
+            fingerprint=self.spec.fingerprint(),
+            label=self.label,
+            split=self.split,
+        )
+
+    # -- columns and bindings --------------------------------------------------------------
+
+    def _resolve_columns(self) -> None:
+        names = list(self.table.column_names)
+        reserved = [c for c in names if c.startswith(_RESERVED)]
+        if reserved:
+            msg = (
+                f"the audited frame has column(s) {reserved} starting with {_RESERVED!r}, a "
+                "prefix the audit reserves; rename them"
+            )
+            raise InputError(msg)
+        present = set(names)
+        provenance_columns: set[str] = set()
+        for feat in self.spec.features:
+            for index, name in enumerate(feat.output_names()):
+                if name not in present:
+                    raise ColumnNotFoundError.missing(
+                        _FRAME,
+                        name,
+                        f"output of {_describe(feat)}",
+                        names,
+                        "Name the frame's feature columns as the spec names them, or fix the spec.",
+                    )
+                extra = (f"{name}__time", f"{name}__known_at")
+                has = isinstance(feat, Latest) and all(c in present for c in extra)
+                if has:
+                    provenance_columns.update(extra)
+                self.outputs.append(_Output(name, feat, index, has))
+        outputs = {o.name for o in self.outputs}
+        self.label_columns = [c for c in names if c not in outputs and c not in provenance_columns]
+        labels = self.spec.labels
+        needed = {labels.time: "label time"}
+        for feat in self.spec.features:
+            for col in self.spec.join_keys(feat)[0]:
+                needed.setdefault(col, f"join key for table {feat.table.name!r}")
+        for col, role in needed.items():
+            if col not in self.label_columns:
+                raise ColumnNotFoundError.missing(
+                    _FRAME,
+                    col,
+                    role,
+                    names,
+                    f"The frame must hold the label table {labels.name!r}'s columns.",
+                )
+        if self.label is not None and self.label not in self.label_columns:
+            raise ColumnNotFoundError.missing(
+                _FRAME, self.label, "label= column", self.label_columns, "Fix label=."
+            )
+        if self.split is None and "split" in self.label_columns:
+            self.split = "split"
+        if self.split is not None and self.split not in names:
+            raise ColumnNotFoundError.missing(
+                _FRAME, self.split, "split= column", names, "Fix split=."
+            )
+
+    def _bind_sources(self) -> None:
+        spec = self.spec
+        tables = spec.tables()
+        unknown = [k for k in self.data if k not in tables]
+        if unknown:
+            msg = (
+                f"data= binds {unknown}, which the spec does not declare; declared tables: "
+                f"{list(tables)}. Fix the name in data= or the spec"
+            )
+            err = UnknownTableError(msg)
+            err.table = unknown[0]
+            raise err
+        label_name = spec.labels.name
+        feature_tables = list(dict.fromkeys(f.table.name for f in spec.features))
+        if label_name in self.data and label_name not in feature_tables:
+            self.notes.append(
+                f"data[{label_name!r}] was not read: the audited frame's rows are the labels"
+            )
+        label_data = self.table.select(self.label_columns)
+        for name in feature_tables:
+            # The label table read by a feature needs its own data: the audited frame may hold
+            # a subset of it (one split), which would change trailing aggregates.
+            source = self.data.get(name, tables[name].path)
+            if source is not None:
+                self.bound[name] = source
+
+        any_provenance = any(o.provenance for o in self.outputs)
+        missing: list[_Output] = []
+        for out in self.outputs:
+            wants = self.force_recompute or not out.provenance
+            if not wants:
+                continue
+            if out.table in self.bound:
+                out.recompute = True
+            elif not any_provenance:
+                missing.append(out)
+        if missing:
+            out = missing[0]
+            why = (
+                "has no provenance columns in the audited frame"
+                if out.is_latest
+                else "is a trailing aggregate"
+            )
+            msg = (
+                f"feature {out.name!r} {why}, so it is checked by recomputation, which needs "
+                f"table {out.table!r}: pass data={{{out.table!r}: frame_or_path}} to audit() "
+                "or set path: on the table in the spec"
+                + (", or build the set with provenance=True" if out.is_latest else "")
+            )
+            err = UnknownTableError(msg)
+            err.table = out.table
+            raise err
+        for i, out in enumerate(o for o in self.outputs if o.recompute):
+            out.slot = i
+
+        features = [_unbounded(f) for f in spec.features if f.table.name in self.bound]
+        if not features:
+            return
+        while self.frame_name in tables:
+            self.frame_name = f"{self.frame_name} (audit)"
+        from .build import build
+
+        audit_spec = TrainingSetSpec(
+            labels=spec.labels.model_copy(update={"name": self.frame_name, "path": None}),
+            features=features,
+            timezone=spec.timezone,
+        )
+        self._keep.append(label_data)
+        self.train = build(
+            audit_spec,
+            data={**self.bound, self.frame_name: label_data},
+            provenance=True,
+            memory_limit=self.memory_limit,
+            threads=self.threads,
+            connection=self.con,
+        )
+        self.plan = self.train.plan
+        sources = getattr(self.train.engine, "sources", None)
+        assert isinstance(sources, dict), "the DuckDB engine exposes its registered sources"
+        self.sources = dict(sources)
+
+    def _register(self) -> None:
+        n = self.table.num_rows
+        aud = self.table.append_column(_POS, pa.array(np.arange(n, dtype=np.int64)))
+        recomputed = [o for o in self.outputs if o.recompute]
+        if recomputed:
+            assert self.train is not None
+            expected = self.train.to_arrow()
+            for out in recomputed:
+                aud = aud.append_column(f"__aj_e{out.slot}", expected.column(out.name))
+                if out.is_latest:
+                    aud = aud.append_column(
+                        f"__aj_es{out.slot}", expected.column(f"{out.name}__time")
+                    )
+                    aud = aud.append_column(
+                        f"__aj_ek{out.slot}", expected.column(f"{out.name}__known_at")
+                    )
+        self._keep.append(aud)
+        self.con.register(_AUD, aud)
+        self.types = _duck_types(self.con, q(_AUD))
+        for name, view in self.sources.items():
+            self.source_types[name] = _duck_types(self.con, q(view))
+        # The label time zone: the plan's when there is one, else read off the frame's types.
+        if self.plan is not None:
+            self.label_zone = self.plan.labels.time.zone
+            return
+        time_cols = [self.spec.labels.time] + [
+            f"{o.name}{s}" for o in self.outputs if o.provenance for s in ("__time", "__known_at")
+        ]
+        aware = any(self.types[c] == _TZ for c in time_cols)
+        if aware and self.types[self.spec.labels.time] != _TZ:
+            self.label_zone = self.spec.timezone or "UTC"
+            if self.spec.timezone is None:
+                self.notes.append(
+                    f"label time {self.spec.labels.time!r} is naive but provenance times are "
+                    "timezone-aware and the spec sets no timezone=: label times read as UTC"
+                )
+
+    # -- SQL helpers -----------------------------------------------------------------------
+
+    def _us(self, column: str, types: Mapping[str, str], p: Params, zone: str | None) -> str:
+        """Epoch microseconds of a time column (aware: the instant; naive: read in zone)."""
+        return _micros_sql(q(column), types[column], column, p, zone)
+
+    def _t(self, p: Params) -> str:
+        return self._us(self.spec.labels.time, self.types, p, self.label_zone)
+
+    def _eq(self, a: str, b: str, type_a: str, type_b: str) -> str:
+        return _eq_sql(a, b, _family(type_a), _family(type_b))
+
+    def _fetch(self, sql: str, p: Params) -> pa.Table:
+        table: pa.Table = self.con.sql(sql, params=dict(p.values)).to_arrow_table()
+        return table
+
+    def _scalar_rows(self, sql: str, p: Params) -> list[tuple[Any, ...]]:
+        return self.con.execute(sql, dict(p.values)).fetchall()
+
+    def _examples(
+        self, out: _Output | None, positions: np.ndarray, extra: dict[str, list[Any]]
+    ) -> list[dict[str, Any]]:
+        """A few offending rows: position, label key, label time, supplied value, extras."""
+        k = min(self.max_examples, len(positions))
+        if k == 0:
+            return []
+        take = pa.array(positions[:k].astype(np.int64))
+        keys: list[str] = []
+        if out is not None:
+            keys = list(self.spec.join_keys(out.feature)[0])
+        time = self.spec.labels.time
+        cols = [*keys, time] + ([out.name] if out is not None else [])
+        rows = self.table.select(list(dict.fromkeys(cols))).take(take).to_pylist()
+        examples: list[dict[str, Any]] = []
+        for j, row in enumerate(rows):
+            ex: dict[str, Any] = {"position": int(positions[j])}
+            if keys:
+                ex["key"] = {c: row[c] for c in keys}
+            ex["label_time"] = row[time]
+            if out is not None:
+                ex["supplied"] = row[out.name]
+            for name, values in extra.items():
+                ex[name] = values[j]
+            examples.append(ex)
+        return examples
+
+    def _add(
+        self,
+        rule: Rule,
+        out: _Output | None,
+        positions: np.ndarray,
+        message: str,
+        examples: list[dict[str, Any]],
+        *,
+        severity: Severity | None = None,
+        table: str | None = None,
+        cause: Cause | None = None,
+        details: dict[str, Any] | None = None,
+        rows: int | None = None,
+    ) -> None:
+        self.findings.append(
+            Finding(
+                rule=rule,
+                severity=severity or RULE_SEVERITY[rule],
+                feature=None if out is None else out.name,
+                rows=len(positions) if rows is None else rows,
+                positions=[int(x) for x in positions],
+                examples=examples,
+                message=message,
+                table=table if table is not None else (None if out is None else out.table),
+                cause=cause,
+                details=details or {},
+            )
+        )
+
+    def _share(self, n: int) -> str:
+        total = self.table.num_rows
+        return f"{_rows(n)} ({n / total:.2%})" if total else _rows(n)
+
+    # -- provenance rules ------------------------------------------------------------------
+
+    def _check_provenance(self, out: _Output) -> None:
+        """future_row, not_yet_known and stale_value from <name>__time and <name>__known_at."""
+        p = Params()
+        t = self._t(p)
+        s = self._us(f"{out.name}__time", self.types, p, None)
+        k0 = self._us(f"{out.name}__known_at", self.types, p, None)
+        inclusive = out.feature.table.inclusive
+        cmp = ">" if inclusive else ">="
+        max_age = out.max_age_us
+        stale = "FALSE" if max_age is None else f"s < t - CAST({p.add(max_age)} AS BIGINT)"
+        base = f"""
+            WITH x AS (
+                SELECT {q(_POS)} AS pos, {t} AS t, {s} AS s, greatest({k0}, {s}) AS k
+                FROM {q(_AUD)}
+            ), c AS (
+                SELECT pos, t, s, k,
+                       CASE WHEN t IS NULL OR s IS NULL THEN 0
+                            WHEN s {cmp} t THEN 1
+                            WHEN k {cmp} t THEN 2
+                            WHEN {stale} THEN 3
+                            ELSE 0 END AS cls
+                FROM x
+            )
+        """
+        found = self._fetch(
+            base + "SELECT pos, cls, s, k, t - s AS age FROM c WHERE cls > 0 ORDER BY pos", p
+        )
+        cls = found.column("cls").to_numpy()
+        pos = found.column("pos").to_numpy()
+        chart = self.checks[out.name]
+        np.add.at(chart.flagged, _bins(found.column("age").to_numpy()), 1)
+        rows = self._scalar_rows(
+            base + f"SELECT {_bin_sql('t - s')} AS b, count(*) FROM c "
+            "WHERE cls = 0 AND t IS NOT NULL AND s IS NOT NULL GROUP BY b",
+            p,
+        )
+        for b, n in rows:
+            chart.clean[int(b)] += int(n)
+        chart.charted = True
+        missing_time = self._scalar_rows(
+            f"SELECT count(*) FROM {q(_AUD)} WHERE {q(out.name)} IS NOT NULL AND "
+            f"{q(out.name + '__time')} IS NULL",
+            Params(),
+        )[0][0]
+        if missing_time:
+            self.notes.append(
+                f"{missing_time:,} rows of {out.name!r} have a value but no {out.name}__time; "
+                "the provenance rules could not check them"
+            )
+        table = out.table
+        times = {
+            "row_time": _micros_to_py(found.column("s")),
+            "row_known_at": _micros_to_py(found.column("k")),
+        }
+        when = "after" if inclusive else "at or after"
+        for code, rule, text in (
+            (1, Rule.FUTURE_ROW, f"came from a row of {table!r} valid {when} the label time"),
+            (
+                2,
+                Rule.NOT_YET_KNOWN,
+                f"came from a row of {table!r} valid before the label time but not known "
+                f"until {when} it",
+            ),
+            (
+                3,
+                Rule.STALE_VALUE,
+                f"came from a row of {table!r} older than max_age "
+                f"{format_duration(dt.timedelta(microseconds=max_age or 0))} at the label "
+                "time (the point-in-time value is null)",
+            ),
+        ):
+            mask = cls == code
+            if not mask.any():
+                continue
+            hit = pos[mask]
+            extra = {
+                name: [v for v, m in zip(vals, mask, strict=True) if m]
+                for name, vals in times.items()
+            }
+            self._add(
+                rule,
+                out,
+                hit,
+                f"{self._share(len(hit))} of {out.name!r} {text}",
+                self._examples(out, hit, extra),
+            )
+
+    # -- recomputation ---------------------------------------------------------------------
+
+    def _check_recomputed(self) -> None:
+        trailing_mismatches: dict[str, np.ndarray] = {}
+        for out in self.outputs:
+            if not out.recompute:
+                continue
+            if out.is_latest:
+                self._check_latest_values(out)
+            else:
+                pos = self._trailing_mismatches(out)
+                if len(pos):
+                    trailing_mismatches[out.name] = pos
+        if trailing_mismatches:
+            self._classify_trailing(trailing_mismatches)
+
+    def _check_latest_values(self, out: _Output) -> None:
+        """Compare with the point-in-time value; search mismatches among later source rows."""
+        assert self.plan is not None
+        lookup, value = self._lookup_of(out.name)
+        i = out.slot
+        p = Params()
+        t = self._t(p)
+        es = self._us(f"__aj_es{i}", self.types, p, None)
+        ek = self._us(f"__aj_ek{i}", self.types, p, None)
+        label_keys = lookup.label_keys
+        keys = ", ".join(f'{q(c)} AS "__aj_k{j}"' for j, c in enumerate(label_keys))
+        f_type, e_type = self.types[out.name], self.types[f"__aj_e{i}"]
+        max_age = out.max_age_us
+        if max_age is None:
+            pit = "e"
+            fresh = "TRUE"
+            stale = "FALSE"
+        else:
+            ma = f"CAST({p.add(max_age)} AS BIGINT)"
+            fresh = f"es >= t - {ma}"
+            pit = f"CASE WHEN es IS NOT NULL AND {fresh} THEN e END"
+            stale = f"(es IS NOT NULL AND es < t - {ma} AND {self._eq('f', 'e', f_type, e_type)})"
+        self.con.execute(
+            f"""
+            CREATE OR REPLACE TEMP TABLE "__aj_mis" AS
+            WITH x AS (
+                SELECT {q(_POS)} AS pos, {t} AS t, {es} AS es, {ek} AS ek, {q(out.name)} AS f,
+                       {q(f"__aj_e{i}")} AS e, {keys}
+                FROM {q(_AUD)}
+            ), y AS (SELECT *, {pit} AS pit FROM x)
+            SELECT *, {stale} AS stale FROM y WHERE NOT {self._eq("f", "pit", f_type, e_type)}
+            """,
+            dict(p.values),
+        )
+        # Clean rows go to the chart by the age of the row that supplied them.
+        chart = self.checks[out.name]
+        cp = Params()
+        c_t, c_es = self._t(cp), self._us(f"__aj_es{i}", self.types, cp, None)
+        c_fresh = "TRUE" if max_age is None else f"es >= t - CAST({cp.add(max_age)} AS BIGINT)"
+        c_pit = "e" if max_age is None else f"CASE WHEN es IS NOT NULL AND {c_fresh} THEN e END"
+        clean_rows = self._scalar_rows(
+            f"""
+            SELECT {_bin_sql("t - es")} AS b, count(*) FROM (
+                SELECT *, {c_pit} AS pit FROM (
+                    SELECT {c_t} AS t, {c_es} AS es, {q(out.name)} AS f,
+                           {q(f"__aj_e{i}")} AS e FROM {q(_AUD)}
+                )
+            ) WHERE t IS NOT NULL AND es IS NOT NULL AND {c_fresh}
+                AND {self._eq("f", "pit", f_type, e_type)}
+            GROUP BY b
+            """,
+            cp,
+        )
+        for b, n in clean_rows:
+            chart.clean[int(b)] += int(n)
+        chart.charted = True
+
+        # Later rows: same key, not visible at the label time, value equal to the supplied one.
+        rp = Params()
+        rows_sql = self._rows_sql(lookup, [value.column], rp)
+        v_type = self.source_types[lookup.table][value.column]
+        on = " AND ".join(f'm."__aj_k{j}" = r."__aj_k{j}"' for j in range(len(label_keys)))
+        later = "r.k > m.t" if lookup.inclusive else "r.k >= m.t"
+        fam_f, fam_v = _family(f_type), _family(v_type)
+        # An ASOF join finds, per mismatch, the first row of its key with an equal value that
+        # became known at or after the label time: (n + m) log, however many rows share a key.
+        self.con.execute(
+            f"""
+            CREATE OR REPLACE TEMP TABLE "__aj_leak" AS
+            SELECT m.pos, r.s AS ls, r.k AS lk
+            FROM (SELECT *, {_canon_sql("f", fam_f, fam_v)} AS cv FROM "__aj_mis") AS m
+            ASOF JOIN (SELECT *, {_canon_sql("v0", fam_v, fam_f)} AS cv FROM ({rows_sql})) AS r
+                ON {on} AND m.cv IS NOT DISTINCT FROM r.cv AND {later}
+            WHERE {self._eq("m.f", "r.v0", f_type, v_type)}
+            """,
+            dict(rp.values),
+        )
+        found = self._fetch(
+            'SELECT m.pos, m.stale, m.t, m.es, m.ek, l.ls, l.lk, m.pit FROM "__aj_mis" AS m '
+            'LEFT JOIN "__aj_leak" AS l ON m.pos = l.pos ORDER BY m.pos',
+            Params(),
+        )
+        self.con.execute('DROP TABLE "__aj_mis"; DROP TABLE "__aj_leak"')
+        if found.num_rows == 0:
+            return
+        pos = found.column("pos").to_numpy()
+        stale_fit = found.column("stale").to_numpy(zero_copy_only=False).astype(bool)
+        later_fit = found.column("ls").is_valid().to_numpy(zero_copy_only=False)
+        # A value may equal both the row older than max_age and a later row. Such rows follow
+        # the feature's unambiguous ones: stale when some rows are stale only and none is a
+        # leak only (a pipeline that ignores max_age); else leaks, the safe side for a gate.
+        both = stale_fit & later_fit
+        as_stale = bool((stale_fit & ~later_fit).any()) and not bool((later_fit & ~stale_fit).any())
+        stale = stale_fit & (~later_fit | as_stale)
+        leak = later_fit & ~stale
+        unknown = ~stale & ~leak
+        t_us = found.column("t").to_numpy(zero_copy_only=False)
+        age = np.where(
+            stale,
+            t_us - _filled(found.column("es")),
+            t_us - _filled(found.column("ls")),
+        )
+        placed = stale | leak
+        np.add.at(chart.flagged, _bins(age[placed]), 1)
+        chart.unplaced += int(unknown.sum())
+
+        pit = found.column("pit").to_pylist()
+        es_py = _micros_to_py(found.column("es"))
+        ek_py = _micros_to_py(found.column("ek"))
+        ls_py = _micros_to_py(found.column("ls"))
+        lk_py = _micros_to_py(found.column("lk"))
+        table = out.table
+
+        def pick(mask: np.ndarray, **cols: list[Any]) -> dict[str, list[Any]]:
+            return {
+                name: [v for v, m in zip(vals, mask, strict=True) if m]
+                for name, vals in cols.items()
+            }
+
+        if leak.any():
+            hit = pos[leak]
+            self._add(
+                Rule.VALUE_MISMATCH,
+                out,
+                hit,
+                f"{self._share(len(hit))} of {out.name!r} differ from the point-in-time value "
+                f"and equal the value of a row of {table!r} not yet visible at the label time "
+                "(leakage)",
+                self._examples(
+                    out,
+                    hit,
+                    pick(leak, point_in_time=pit, later_row_time=ls_py, later_row_known_at=lk_py),
+                ),
+                cause=Cause.LATER_ROW,
+                details={"also_older_than_max_age": int((both & leak).sum())},
+            )
+        if stale.any():
+            hit = pos[stale]
+            ma_text = format_duration(dt.timedelta(microseconds=max_age or 0))
+            self._add(
+                Rule.STALE_VALUE,
+                out,
+                hit,
+                f"{self._share(len(hit))} of {out.name!r} hold the value of a row of {table!r} "
+                f"older than max_age {ma_text} at the label time (the point-in-time value is "
+                "null)",
+                self._examples(
+                    out, hit, pick(stale, point_in_time=pit, row_time=es_py, row_known_at=ek_py)
+                ),
+            )
+        if unknown.any():
+            hit = pos[unknown]
+            self._add(
+                Rule.VALUE_MISMATCH,
+                out,
+                hit,
+                f"{self._share(len(hit))} of {out.name!r} differ from the point-in-time value "
+                f"and match no row of {table!r} that was not yet visible (cause unknown: "
+                "another source, a transformation or a bug)",
+                self._examples(out, hit, pick(unknown, point_in_time=pit)),
+                severity=Severity.WARNING,
+                cause=Cause.UNKNOWN,
+            )
+
+    def _trailing_mismatches(self, out: _Output) -> np.ndarray:
+        i = out.slot
+        f_type, e_type = self.types[out.name], self.types[f"__aj_e{i}"]
+        found = self._fetch(
+            f"SELECT {q(_POS)} AS pos FROM {q(_AUD)} "
+            f"WHERE NOT {self._eq(q(out.name), q(f'__aj_e{i}'), f_type, e_type)} ORDER BY pos",
+            Params(),
+        )
+        pos: np.ndarray = found.column("pos").to_numpy()
+        return pos
+
+    def _classify_trailing(self, mismatches: dict[str, np.ndarray]) -> None:
+        """Rebuild mismatching trailing features counting rows not yet visible; compare again."""
+        from .build import build
+
+        by_name = {o.name: o for o in self.outputs}
+        features = []
+        for name in mismatches:
+            feat = by_name[name].feature
+            leaky = feat.table.model_copy(
+                update={"known_at": None, "delay": dt.timedelta(0), "inclusive": True}
+            )
+            features.append(feat.model_copy(update={"table": leaky}))
+        spec = TrainingSetSpec(
+            labels=self.spec.labels.model_copy(update={"name": self.frame_name, "path": None}),
+            features=features,
+            timezone=self.spec.timezone,
+        )
+        tables = {f.table.name for f in features}
+        variant = build(
+            spec,
+            data={
+                **{n: s for n, s in self.bound.items() if n in tables},
+                self.frame_name: self.table.select(self.label_columns),
+            },
+            memory_limit=self.memory_limit,
+            threads=self.threads,
+        ).to_arrow()
+        for name, pos in mismatches.items():
+            out = by_name[name]
+            i = out.slot
+            leaky_values = variant.column(name).take(pa.array(pos))
+            small = pa.table({"pos": pa.array(pos), "v": leaky_values})
+            self.con.register("__aj_var", small)
+            v_type = _duck_types(self.con, '"__aj_var"')["v"]
+            is_leak = self._eq(f"a.{q(name)}", "v.v", self.types[out.name], v_type)
+            found = self._fetch(
+                f"""
+                SELECT a.{q(_POS)} AS pos, {is_leak} AS leak,
+                       a.{q(f"__aj_e{i}")} AS pit, v.v AS leaky
+                FROM {q(_AUD)} AS a JOIN "__aj_var" AS v ON a.{q(_POS)} = v.pos ORDER BY pos
+                """,
+                Params(),
+            )
+            self.con.unregister("__aj_var")
+            leak = found.column("leak").to_numpy(zero_copy_only=False).astype(bool)
+            pos_all = found.column("pos").to_numpy()
+            pit = found.column("pit").to_pylist()
+            leaky_py = found.column("leaky").to_pylist()
+            for mask, cause in ((leak, Cause.NOT_YET_VISIBLE_ROWS), (~leak, Cause.UNKNOWN)):
+                if not mask.any():
+                    continue
+                hit = pos_all[mask]
+                kept = [v for v, m in zip(pit, mask, strict=True) if m]
+                extra: dict[str, list[Any]] = {"point_in_time": kept}
+                if cause is Cause.NOT_YET_VISIBLE_ROWS:
+                    extra["with_not_yet_visible_rows"] = [
+                        v for v, m in zip(leaky_py, mask, strict=True) if m
+                    ]
+                    text = (
+                        "differ from the point-in-time aggregate and equal the aggregate that "
+                        f"also counts rows of {out.table!r} not yet visible at the label time "
+                        "(known later, or stamped at the label time): leakage"
+                    )
+                else:
+                    text = (
+                        "differ from the point-in-time aggregate (cause unknown: another "
+                        "window, source or bug)"
+                    )
+                self._add(
+                    Rule.VALUE_MISMATCH,
+                    out,
+                    hit,
+                    f"{self._share(len(hit))} of {name!r} {text}",
+                    self._examples(out, hit, extra),
+                    severity=Severity.WARNING if cause is Cause.UNKNOWN else Severity.ERROR,
+                    cause=cause,
+                )
+
+    def _lookup_of(self, output: str) -> tuple[LatestLookup, Any]:
+        """The plan's latest lookup and value that produce an output column."""
+        assert self.plan is not None
+        steps = {lk.step: lk for lk in self.plan.lookups}
+        for col in self.plan.outputs:
+            if col.name == output and col.slot == "value":
+                lookup = steps[col.step]
+                return lookup, lookup.values[col.index]  # type: ignore[return-value]
+        msg = f"internal: no plan output {output!r}"  # pragma: no cover - plan covers outputs
+        raise AssertionError(msg)  # pragma: no cover
+
+    def _rows_sql(
+        self, lookup: LatestLookup | TrailingLookup, columns: Sequence[str], p: Params
+    ) -> str:
+        """A table's rows as the engine sees them: keys, s, k (epoch micros), values, position."""
+        types = self.source_types[lookup.table]
+        view = q(self.sources[lookup.table])
+        s = self._us(lookup.valid.column, types, p, lookup.valid.zone)
+        if lookup.known is not None:
+            k = f"greatest({self._us(lookup.known.column, types, p, lookup.known.zone)}, {s})"
+        elif lookup.delay_us:
+            k = f"{s} + CAST({p.add(lookup.delay_us)} AS BIGINT)"
+        else:
+            k = s
+        keys = [f'{q(c)} AS "__aj_k{j}"' for j, c in enumerate(lookup.table_keys)]
+        vals = [f'{q(c)} AS "v{j}"' for j, c in enumerate(columns)]
+        where = [f"{q(c)} IS NOT NULL" for c in lookup.table_keys]
+        where.append(f"{q(lookup.valid.column)} IS NOT NULL")
+        if lookup.known is not None:
+            where.append(f"{q(lookup.known.column)} IS NOT NULL")
+        return (
+            f"SELECT src_pos, {', '.join(keys)}, {s} AS s, {k} AS k"
+            + "".join(", " + v for v in vals)
+            + f" FROM (SELECT row_number() OVER () - 1 AS src_pos, * FROM {view})"
+            + f" WHERE {' AND '.join(where)}"
+        )
+
+    # -- source rules ----------------------------------------------------------------------
+
+    def _check_sources(self) -> None:
+        if self.plan is None:
+            return
+        seen_tables: set[str] = set()
+        for lookup in self.plan.lookups:
+            if lookup.table not in seen_tables:
+                seen_tables.add(lookup.table)
+                if lookup.known is not None:
+                    self._known_before_valid(lookup)
+            if isinstance(lookup, LatestLookup):
+                for value in lookup.values:
+                    self._ambiguous(lookup, value.column, value.output)
+
+    def _known_before_valid(self, lookup: LatestLookup | TrailingLookup) -> None:
+        assert lookup.known is not None
+        types = self.source_types[lookup.table]
+        p = Params()
+        s = self._us(lookup.valid.column, types, p, lookup.valid.zone)
+        k = self._us(lookup.known.column, types, p, lookup.known.zone)
+        view = q(self.sources[lookup.table])
+        keys = [q(c) for c in lookup.table_keys]
+        found = self._fetch(
+            f"SELECT src_pos, {', '.join(keys)}, {q(lookup.valid.column)} AS valid_time, "
+            f"{q(lookup.known.column)} AS known_at FROM (SELECT row_number() OVER () - 1 AS "
+            f"src_pos, * FROM {view}) WHERE {k} < {s} ORDER BY src_pos",
+            p,
+        )
+        if found.num_rows == 0:
+            return
+        pos = found.column("src_pos").to_numpy()
+        examples = self._source_examples(found, lookup.table_keys, ["valid_time", "known_at"])
+        self._add(
+            Rule.KNOWN_BEFORE_VALID,
+            None,
+            pos,
+            f"{found.num_rows:,} rows of table {lookup.table!r} have {lookup.known.column!r} "
+            f"(known time) before {lookup.valid.column!r} (valid time); their known time is "
+            "taken as the valid time",
+            examples,
+            table=lookup.table,
+        )
+
+    def _ambiguous(self, lookup: LatestLookup | TrailingLookup, column: str, output: str) -> None:
+        p = Params()
+        rows = self._rows_sql(lookup, [column], p)
+        keys = [f'"__aj_k{j}"' for j in range(len(lookup.table_keys))]
+        group = ", ".join([*keys, "s", "k"])
+        on = " AND ".join(f"r.{c} = g.{c}" for c in [*keys, "s", "k"])
+        found = self._fetch(
+            f"""
+            WITH r AS ({rows}),
+            g AS (
+                SELECT {group} FROM r GROUP BY {group}
+                HAVING count(DISTINCT v0) + CASE WHEN count(v0) < count(*) THEN 1 ELSE 0 END > 1
+            )
+            SELECT r.src_pos, r.v0 AS value, r.s, r.k,
+                   dense_rank() OVER (ORDER BY {", ".join(f"r.{c}" for c in [*keys, "s", "k"])})
+                       AS grp
+            FROM r JOIN g ON {on} ORDER BY r.src_pos
+            """,
+            p,
+        )
+        if found.num_rows == 0:
+            return
+        pos = found.column("src_pos").to_numpy()
+        groups = int(pc.max(found.column("grp")).as_py())
+        raw = self._fetch(
+            f"SELECT {', '.join(q(c) for c in lookup.table_keys)}, {q(lookup.valid.column)} AS "
+            f"valid_time FROM (SELECT row_number() OVER () - 1 AS src_pos, * FROM "
+            f"{q(self.sources[lookup.table])}) WHERE list_contains($pos, src_pos) ORDER BY src_pos",
+            _params(pos=[int(x) for x in pos[: self.max_examples]]),
+        )
+        examples = []
+        for j, row in enumerate(raw.to_pylist()):
+            examples.append(
+                {
+                    "position": int(pos[j]),
+                    "key": {c: row[c] for c in lookup.table_keys},
+                    "valid_time": row["valid_time"],
+                    "known_time": _micros_to_py(found.column("k").slice(j, 1))[0],
+                    "value": found.column("value")[j].as_py(),
+                    "group": int(found.column("grp")[j].as_py()),
+                }
+            )
+        self._add(
+            Rule.AMBIGUOUS_SOURCE_ROWS,
+            None,
+            pos,
+            f"{found.num_rows:,} rows of table {lookup.table!r} fall in {groups:,} groups with "
+            f"equal key, valid and known time but different {column!r} values (feature "
+            f"{output!r}); the build keeps the last in input order, so the result depends on "
+            "load order",
+            examples,
+            table=lookup.table,
+            details={"groups": groups, "column": column, "feature": output},
+        )
+
+    def _source_examples(
+        self, found: pa.Table, keys: Sequence[str], columns: Sequence[str]
+    ) -> list[dict[str, Any]]:
+        examples = []
+        for row in found.slice(0, self.max_examples).to_pylist():
+            ex: dict[str, Any] = {"position": int(row["src_pos"])}
+            ex["key"] = {c: row[c] for c in keys}
+            ex.update({c: row[c] for c in columns})
+            examples.append(ex)
+        return examples
+
+    # -- label proxy -----------------------------------------------------------------------
+
+    def _check_label_proxy(self) -> None:
+        if self.label is None:
+            return
+        lab = q(self.label)
+        values = [
+            r[0]
+            for r in self._scalar_rows(
+                f"SELECT DISTINCT {lab} FROM {q(_AUD)} WHERE {lab} IS NOT NULL LIMIT 3", Params()
+            )
+        ]
+        if len(values) != 2:
+            self.notes.append(
+                f"label_proxy skipped: label {self.label!r} has "
+                f"{'more than 2' if len(values) > 2 else len(values)} distinct values; the rule "
+                "needs a binary label"
+            )
+            return
+        try:
+            positive = sorted(values)[1]
+        except TypeError:
+            positive = sorted(values, key=str)[1]
+        label_type = self.types[self.label]
+        for out in self.outputs:
+            f = q(out.name)
+            f_type = self.types[out.name]
+            eq = self._eq(f, lab, f_type, label_type)
+            p = _params(pos=positive)
+            row = self._scalar_rows(
+                f"SELECT count(*), count(*) FILTER (WHERE {eq}), "
+                f"count(*) FILTER (WHERE {f} IS NOT NULL AND {lab} = $pos), "
+                f"count(*) FILTER (WHERE {f} IS NOT NULL AND {lab} <> $pos) "
+                f"FROM {q(_AUD)} WHERE {lab} IS NOT NULL",
+                p,
+            )[0]
+            labelled, equal, n_pos, n_neg = (int(x) for x in row)
+            if min(n_pos, n_neg) < PROXY_MIN_CLASS_ROWS:
+                continue
+            measure: dict[str, Any] | None = None
+            if labelled and equal / labelled >= PROXY_EQUAL_SHARE:
+                measure = {
+                    "measure": "equal_share",
+                    "value": equal / labelled,
+                    "threshold": PROXY_EQUAL_SHARE,
+                }
+                text = (
+                    f"equals the label {self.label!r} on {equal / labelled:.2%} of {labelled:,} "
+                    f"labelled rows (threshold {PROXY_EQUAL_SHARE:.0%})"
+                )
+                measured = labelled
+            elif _family(f_type) in _NUMERIC and (roc_auc_score := self._roc_auc()) is not None:
+                xy = self._fetch(
+                    f"SELECT CAST({f} AS DOUBLE) AS x, {lab} = $pos AS y FROM {q(_AUD)} "
+                    f"WHERE {lab} IS NOT NULL AND {f} IS NOT NULL "
+                    f"AND NOT isnan(CAST({f} AS DOUBLE))",
+                    p,
+                )
+                y = xy.column("y").to_numpy(zero_copy_only=False).astype(bool)
+                if min(int(y.sum()), int((~y).sum())) < PROXY_MIN_CLASS_ROWS:
+                    continue
+                x = xy.column("x").to_numpy(zero_copy_only=False)
+                auc = float(roc_auc_score(y, x))
+                if 1 - PROXY_AUC < auc < PROXY_AUC:
+                    continue
+                measure = {"measure": "roc_auc", "value": auc, "threshold": PROXY_AUC}
+                text = (
+                    f"separates the label {self.label!r} almost perfectly: ROC AUC {auc:.4f} "
+                    f"over {len(y):,} rows (threshold >= {PROXY_AUC} or <= "
+                    f"{1 - PROXY_AUC:.2f})"
+                )
+                measured = len(y)
+            if measure is None:
+                continue
+            sample = self._fetch(
+                f"SELECT {q(_POS)} AS pos, {lab} AS label, {f} AS value FROM {q(_AUD)} "
+                f"WHERE {lab} IS NOT NULL AND {f} IS NOT NULL ORDER BY {q(_POS)} "
+                f"LIMIT {int(self.max_examples)}",
+                Params(),
+            ).to_pylist()
+            examples = [
+                {"position": r["pos"], "label": r["label"], "value": r["value"]} for r in sample
+            ]
+            self._add(
+                Rule.LABEL_PROXY,
+                out,
+                np.empty(0, dtype=np.int64),
+                f"{out.name!r} {text}; a single feature this predictive is usually derived from "
+                "the label",
+                examples,
+                rows=measured,
+                details=measure,
+            )
+
+    def _roc_auc(self) -> Any:
+        """sklearn's roc_auc_score, imported on first use; None (and a note) when missing."""
+        if self._auc is None:
+            try:
+                from sklearn.metrics import roc_auc_score
+            except ImportError:
+                self._auc = False
+                self.notes.append(
+                    "label_proxy: scikit-learn is not installed, so the ROC AUC measure was "
+                    "skipped (pip install scikit-learn); the equality measure ran"
+                )
+            else:
+                self._auc = roc_auc_score
+        return self._auc or None
+
+    # -- splits ----------------------------------------------------------------------------
+
+    def _check_splits(self) -> None:
+        if self.split is None:
+            return
+        from .splits import GAP
+
+        p = Params()
+        t = self._t(p)
+        sc = f"CAST({q(self.split)} AS VARCHAR)"
+        gap_name = p.add(GAP)
+        stats = self._scalar_rows(
+            f"SELECT {sc} AS name, min({t}), max({t}) FROM {q(_AUD)} "
+            f"WHERE {q(self.split)} IS NOT NULL AND {sc} <> {gap_name} "
+            f"AND {q(self.spec.labels.time)} IS NOT NULL GROUP BY name",
+            p,
+        )
+        if len(stats) < 2:
+            return
+        first = {name: lo for name, lo, _ in stats}
+        last = {name: hi for name, _, hi in stats}
+        listed = [n for n in self.split_names if n in first]
+        others = sorted((n for n in first if n not in self.split_names), key=lambda n: first[n])
+        if others:
+            self.notes.append(
+                f"split values {others} are not in split_names; ordered by their first label time"
+            )
+        order = listed + others
+        gap_text = format_duration(dt.timedelta(microseconds=self.gap_us))
+        for a_index, earlier in enumerate(order):
+            for later in order[a_index + 1 :]:
+                bound = last[earlier] + self.gap_us
+                lp = Params()
+                lt = self._t(lp)
+                name_param = lp.add(later)
+                bound_param = lp.add(int(bound))
+                found = self._fetch(
+                    f"SELECT {q(_POS)} AS pos FROM {q(_AUD)} WHERE {sc} = {name_param} "
+                    f"AND {lt} <= CAST({bound_param} AS BIGINT) ORDER BY pos",
+                    lp,
+                )
+                if found.num_rows == 0:
+                    continue
+                pos = found.column("pos").to_numpy()
+                end = _micros_to_py(pa.array([last[earlier]], type=pa.int64()))[0]
+                examples = self._examples(None, pos, {})
+                for ex in examples:
+                    ex["split"] = later
+                    ex["earlier_split"] = earlier
+                    ex["earlier_split_end"] = end
+                self._add(
+                    Rule.SPLIT_OVERLAP,
+                    None,
+                    pos,
+                    f"{_rows(found.num_rows)} of split {later!r}: label time at or before the "
+                    f"end of {earlier!r} ({end}) plus the gap {gap_text}",
+                    examples,
+                    details={"earlier": earlier, "later": later, "gap": gap_text},
+                )
+
+
+_POS = "__aj_pos"
+_AUD = "__aj_aud"
+_TZ = "TIMESTAMP WITH TIME ZONE"
+
+
+def _rows(n: int) -> str:
+    return f"{n:,} row{'' if n == 1 else 's'}"
+
+
+def _describe(feat: Feature) -> str:
+    if isinstance(feat, Latest):
+        return f"Latest({feat.table.name!r}, {list(feat.columns)})"
+    assert isinstance(feat, Trailing)
+    return f"Trailing({feat.table.name!r}, {feat.column!r}, {feat.agg!r})"
+
+
+def _unbounded(feat: Feature) -> Feature:
+    """A latest feature without max_age, so the audit sees the row a stale value came from."""
+    if isinstance(feat, Latest) and feat.max_age is not None:
+        return feat.model_copy(update={"max_age": None})
+    return feat
+
+
+def _params(**values: object) -> Params:
+    p = Params()
+    p.values.update(values)
+    return p
+
+
+def _duck_types(con: duckdb.DuckDBPyConnection, relation: str) -> dict[str, str]:
+    rel = con.sql(f"SELECT * FROM {relation} LIMIT 0")
+    return {name: str(typ) for name, typ in zip(rel.columns, rel.types, strict=True)}
+
+
+def _family(duck_type: str) -> str:
+    """The comparison family of a DuckDB type: int, float, bool, text, or the type itself."""
+    t = duck_type.upper()
+    if t in _INT_TYPES:
+        return "int"
+    if t in ("FLOAT", "DOUBLE") or t.startswith("DECIMAL"):
+        return "float"
+    if t == "BOOLEAN":
+        return "bool"
+    if t == "VARCHAR" or t.startswith("ENUM"):
+        return "text"
+    return t
+
+
+def _eq_sql(a: str, b: str, fa: str, fb: str) -> str:
+    """Never-null equality: null equals null; floats (NaN as null) within the tolerance."""
+    if fa == fb and fa != "float":
+        return f"({a} IS NOT DISTINCT FROM {b})"
+    if fa in _NUMERIC and fb in _NUMERIC:
+        x = f"nullif(CAST({a} AS DOUBLE), 'NaN'::DOUBLE)"
+        y = f"nullif(CAST({b} AS DOUBLE), 'NaN'::DOUBLE)"
+        close = (
+            f"isfinite({x}) AND isfinite({y}) AND abs({x} - {y}) <= "
+            f"greatest({ABS_TOLERANCE!r}, {REL_TOLERANCE!r} * greatest(abs({x}), abs({y})))"
+        )
+        return (
+            f"(CASE WHEN {x} IS NULL OR {y} IS NULL THEN {x} IS NULL AND {y} IS NULL "
+            f"ELSE {x} = {y} OR ({close}) END)"
+        )
+    return f"(CAST({a} AS VARCHAR) IS NOT DISTINCT FROM CAST({b} AS VARCHAR))"
+
+
+def _canon_sql(x: str, own: str, other: str) -> str:
+    """The value an ASOF join matches on: floats as float32 (the tolerance is checked after)."""
+    if own == other and own != "float":
+        return x
+    if own in _NUMERIC and other in _NUMERIC:
+        return f"CAST(nullif(CAST({x} AS DOUBLE), 'NaN'::DOUBLE) AS FLOAT)"
+    return f"CAST({x} AS VARCHAR)"
+
+
+def _micros_sql(col: str, duck_type: str, name: str, p: Params, zone: str | None) -> str:
+    """Epoch microseconds of a time column: an aware value is its instant; a naive one (or a
+    date, at midnight) is read in ``zone`` when given; units are brought to microseconds."""
+    if duck_type == _TZ:
+        return f"epoch_us({col})"
+    if not (duck_type.startswith("TIMESTAMP") or duck_type == "DATE"):
+        msg = (
+            f"column {name!r} has type {duck_type}, not a timestamp or date; the audit compares "
+            "it as a time: convert it (e.g. pandas.to_datetime)"
+        )
+        err = TimeTypeError(msg)
+        err.column = name
+        raise err
+    ts = f"CAST({col} AS TIMESTAMP)"
+    if zone is not None:
+        return f"epoch_us(timezone({p.add(zone)}, {ts}))"
+    return f"epoch_us({ts})"
+
+
+def _bin_sql(age: str) -> str:
+    parts = [f"WHEN ({age}) <= {int(edge)} THEN {i}" for i, edge in enumerate(_EDGES)]
+    return f"CASE {' '.join(parts)} ELSE {len(_EDGES)} END"
+
+
+def _bins(age_us: np.ndarray) -> np.ndarray:
+    """AGE_BINS index per age in microseconds (same bins as _bin_sql)."""
+    out: np.ndarray = np.searchsorted(_EDGES, np.asarray(age_us, dtype=np.int64), side="left")
+    return out
+
+
+def _filled(column: pa.ChunkedArray | pa.Array) -> np.ndarray:
+    out: np.ndarray = column.fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64)
+    return out
+
+
+def _micros_to_py(column: pa.ChunkedArray | pa.Array) -> list[dt.datetime | None]:
+    """Epoch microseconds as naive datetimes (UTC when the set is timezone-aware)."""
+    typed = column.cast(pa.int64()).cast(pa.timestamp("us"))
+    values: list[dt.datetime | None] = typed.to_pylist()
+    return values
+
+
+def _plain(value: Any) -> Any:
+    """JSON-ready: datetimes as ISO text, numpy scalars unwrapped, NaN as null."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, enum.Enum):
+        return value.value
+    if isinstance(value, (dt.datetime, dt.date, dt.time)):
+        return value.isoformat()
+    if isinstance(value, dt.timedelta):
+        return format_duration(value)
+    if isinstance(value, np.generic):
+        return _plain(value.item())
+    if isinstance(value, float) and not math.isfinite(value):
+        return None if math.isnan(value) else str(value)
+    if isinstance(value, decimal.Decimal):
+        return str(value)
+    if isinstance(value, bytes):
+        return value.hex()
+    if value is None or isinstance(value, (str, int, float, bool)):
+        return value
+    if dataclasses.is_dataclass(value) and not isinstance(value, type):
+        return _plain(dataclasses.asdict(value))
+    return str(value)

@@ -148,15 +148,16 @@ def instant_micros(value: object, what: str, *, aware: bool, timezone: str | Non
     import pandas as pd
 
     try:
-        stamp = pd.Timestamp(value)  # type: ignore[arg-type]  # checked just below
+        parsed = pd.Timestamp(value)  # type: ignore[arg-type]  # any input; checked just below
     except (TypeError, ValueError):
-        stamp = None
-    if stamp is None or stamp is pd.NaT:
+        parsed = None
+    if not isinstance(parsed, pd.Timestamp):  # None, or NaT for None / "NaT"
         msg = (
             f"{what} {value!r} is not a time; give a datetime, a date or an ISO string like "
             "'2024-06-01' or '2024-06-01T12:00'"
         )
         raise InputError(msg)
+    stamp = parsed
     has_zone = stamp.tzinfo is not None
     if has_zone != aware and timezone is None:
         side = "naive" if aware else "timezone-aware"

@@ -20,7 +20,7 @@ from urllib.parse import unquote
 
 from . import __version__
 from .durations import format_duration, parse_duration, to_micros
-from .errors import ColumnNotFoundError, InputError, SpecError
+from .errors import ColumnNotFoundError, InputError, SpecError, UnknownTableError
 from .spec import EntityRef, EventTable, Latest, Trailing, TrainingSetSpec
 
 if TYPE_CHECKING:
@@ -118,7 +118,7 @@ def backfill(
             mapping is used) or a list of Latest/Trailing features. All features must be keyed
             by the same entities.
         data: table name -> frame, DuckDB relation or Parquet/CSV path, as for ``build()``.
-            Bindings of tables no feature reads (such as the label table) are ignored.
+            Bindings of tables no feature reads (such as a spec's label table) are ignored.
         start: the first snapshot time (datetime, date, ISO string, pandas Timestamp). Aware
             times are instants (partition names are then in UTC).
         end: the last snapshot time, included when it lies on the grid.
@@ -196,7 +196,6 @@ class _Target:
 
     spec: TrainingSetSpec
     keys: tuple[str, ...]
-    declared: frozenset[str]  #: table names the caller's spec declares (their data is accepted)
 
     @property
     def label(self) -> str:
@@ -296,7 +295,7 @@ def _target(spec_or_features: object, timezone: str | None) -> _Target:
         entities=[EntityRef(entity=e, columns=columns[e], keys=entity_keys[e]) for e in order],
     )
     spec = TrainingSetSpec(labels=spine, features=features, timezone=timezone)
-    return _Target(spec=spec, keys=keys, declared=declared)
+    return _Target(spec=spec, keys=keys)
 
 
 def _entities_of(feat: Feature) -> list[str]:
@@ -312,9 +311,8 @@ def _materialize(obj: object) -> object:
     if module == "pandas" and type(obj).__name__ == "DataFrame":
         return pa.Table.from_pandas(obj, preserve_index=False)
     if module == "polars":
-        collect = getattr(obj, "collect", None)
-        frame = collect() if type(obj).__name__ == "LazyFrame" and collect else obj
-        return frame.to_arrow()  # type: ignore[attr-defined]  # a polars DataFrame
+        frame: Any = obj.collect() if type(obj).__name__ == "LazyFrame" else obj  # type: ignore[attr-defined]  # a polars LazyFrame
+        return frame.to_arrow()
     if module == "duckdb" and hasattr(obj, "to_arrow_table"):
         return obj.to_arrow_table()
     if isinstance(obj, pa.RecordBatchReader):
@@ -325,17 +323,26 @@ def _materialize(obj: object) -> object:
 
 
 def _inputs(target: _Target, data: Mapping[str, object] | None) -> dict[str, object]:
-    """The bindings the features read: frames converted once, declared-but-unused names dropped."""
+    """The bindings the features read, frames converted once; other bindings are ignored."""
     tables = {n: t for n, t in target.spec.tables().items() if n != target.label}
+    data = data or {}
     out: dict[str, object] = {}
-    for name, obj in (data or {}).items():
-        if name in tables:
-            out[name] = _materialize(obj)
-        elif name not in target.declared:
-            out[name] = obj  # build() names the undeclared binding
     for name, table in tables.items():
-        if name not in out and table.path is not None:
+        if name in data:
+            out[name] = _materialize(data[name])
+        elif table.path is not None:
             out[name] = table.path
+    missing = [n for n in tables if n not in out]
+    if missing:
+        unused = [n for n in data if n not in tables]
+        hint = f" ({list(unused)} bound too, but no feature reads them)" if unused else ""
+        msg = (
+            f"no data for table(s) {missing}, which the features read: pass "
+            f"data={{{missing[0]!r}: frame_or_path}}, or set path: on the table{hint}"
+        )
+        err = UnknownTableError(msg)
+        err.table = missing[0]
+        raise err
     return out
 
 
@@ -351,11 +358,10 @@ def _instant(value: object, what: str) -> dt.datetime:
     elif isinstance(value, dt.date) and not isinstance(value, dt.datetime):
         out = dt.datetime(value.year, value.month, value.day)
     else:
-        try:
+        ts: Any = None
+        with contextlib.suppress(TypeError, ValueError):
             ts = pd.Timestamp(value)  # type: ignore[arg-type]  # str, numpy, pandas values
-        except (TypeError, ValueError):
-            ts = None
-        if ts is None or ts is pd.NaT:
+        if ts is None or pd.isna(ts):
             msg = (
                 f"{what}={value!r} is not a time; pass a datetime, a date or an ISO string such "
                 "as '2024-01-31' or '2024-01-31T06:00'"
@@ -823,11 +829,10 @@ class _Session:
         import pyarrow as pa
 
         from .engines.duckdb import DuckDBEngine
-        from .inputs import check_bindings, check_inputs
+        from .inputs import check_inputs
         from .plan import make_plan
 
         spec = self.target.spec
-        check_bindings(spec, {self.target.label: None, **self.inputs})
         if not self._key_types:
             probe = DuckDBEngine()
             schemas = probe.bind(self.inputs)
@@ -956,7 +961,9 @@ class _Session:
         manifest = state.manifest
         meta = {
             "asof_join.fingerprint": manifest["fingerprint"],
-            "asof_join.spec": self.target.spec.to_json(),
+            "asof_join.spec": json.dumps(
+                self.target.spec.to_document(with_paths=False), ensure_ascii=False
+            ),
             "asof_join.version": __version__,
         }
         tmp = self.folder.tmp

@@ -103,7 +103,7 @@ def build(
     data: Mapping[str, object] | None = None,
     *,
     provenance: bool = False,
-    engine: str = "duckdb",
+    engine: str | Engine = "duckdb",
     memory_limit: str | None = None,
     temp_dir: str | os.PathLike[str] | None = None,
     threads: int | None = None,
@@ -117,7 +117,8 @@ def build(
         data: table name -> pandas/polars/pyarrow frame, DuckDB relation, or Parquet/CSV path
             or glob; overrides each table's ``path``.
         provenance: add ``<name>__time`` and ``<name>__known_at`` after each latest feature.
-        engine: ``"duckdb"`` (in-process) or ``"spark"`` (needs ``spark=`` session).
+        engine: ``"duckdb"`` (in-process) or ``"spark"`` (needs ``spark=`` session), or an
+            engine object configured by hand, e.g. ``SparkEngine(spark, asof="native")``.
         memory_limit: DuckDB memory limit such as ``"2GB"``; larger builds spill to disk.
         temp_dir: where DuckDB spills.
         threads: DuckDB worker threads (default: all cores).
@@ -157,7 +158,7 @@ def build(
         options.update(
             memory_limit=memory_limit, temp_dir=temp_dir, threads=threads, connection=connection
         )
-    runner = get_engine(engine, **options)
+    runner = get_engine(engine, **options) if isinstance(engine, str) else engine
     schemas = runner.bind(bound)
     checked = check_inputs(spec, schemas, provenance=provenance)
     plan = make_plan(

@@ -197,12 +197,18 @@ def check_inputs(
         err.table, err.column = nn, nc
         raise err
     zone = spec.timezone if aware else None
+
+    def ref(name: str, column: str, kind: TimeKind) -> TimeRef:
+        typ = schemas[name].field(column).type
+        nanos = pa.types.is_timestamp(typ) and typ.unit == "ns"
+        return TimeRef(column, kind, None if kind == TimeKind.AWARE else zone, nanos)
+
     times = {
         name: TableTimes(
-            valid=TimeRef(table.time, kinds[name][0], zone),
+            valid=ref(name, table.time, kinds[name][0]),
             known=None
             if table.known_at is None
-            else TimeRef(table.known_at, kinds[name][1] or TimeKind.NAIVE, zone),
+            else ref(name, table.known_at, kinds[name][1] or TimeKind.NAIVE),
         )
         for name, table in tables.items()
     }

@@ -29,6 +29,8 @@ class TimeRef:
     kind: TimeKind
     #: for naive values in an aware build: the zone they are read in (``timezone=``)
     zone: str | None = None
+    #: stored in nanoseconds: truncated (floored) to microseconds, never rounded
+    nanos: bool = False
 
 
 @dataclass(frozen=True)

@@ -152,7 +152,8 @@ def split_by_time(
     split = _assign(t, cut_us, gap_us, split_names)
     if len(nulls):
         split[nulls] = None
-    return _with_column(frame, kind, column, split)
+    out: FrameT = _with_column(frame, kind, column, split)
+    return out
 
 
 def _assign(t: np.ndarray, cuts: np.ndarray, gap: int, names: list[str]) -> np.ndarray:

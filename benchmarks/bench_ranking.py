@@ -55,12 +55,16 @@ def ensure_data(n: int, negatives: int) -> Path:
     tables = make_demo_data(n, seed=0)
     positives = tables["orders"].select(["order_id", "customer_id", "plant_id", "ordered_at"])
     pq.write_table(positives, out / "positives.parquet")
+    sizes = {}
     for name in ("prices", "stock", "views", "orders"):
         pq.write_table(tables[name], out / f"{name}.parquet")
+        sizes[name] = tables[name].num_rows
     del tables
     examples = _sample(out, negatives, "uniform")
     pq.write_table(examples, out / "examples.parquet")
-    done.write_text(json.dumps({"negatives": negatives, "examples": examples.num_rows}))
+    done.write_text(
+        json.dumps({"negatives": negatives, "examples": examples.num_rows, "sizes": sizes})
+    )
     return out
 
 
@@ -178,7 +182,9 @@ def render(result: dict[str, Any]) -> str:
         f"Measured {meta['date']}: {_fmt_count(meta['positives'])} positives x "
         f"{meta['negatives']} negatives = {meta['examples']:,} examples; median of "
         f"{meta['repeat']} run(s), each in a fresh process; {meta['nproc']} cores, "
-        f"{meta['ram_gib']} GiB RAM; DuckDB {meta['duckdb']}.",
+        f"{meta['ram_gib']} GiB RAM; DuckDB {meta['duckdb']}. Feature tables: "
+        + ", ".join(f"{name} {rows:,} rows" for name, rows in meta["sizes"].items())
+        + ".",
         "",
         "| method | wall time (s) | of which sampling (s) | peak memory (MiB) | rows out |",
         "|---|---:|---:|---:|---:|",
@@ -277,6 +283,7 @@ def main(argv: list[str] | None = None) -> int:
             "positives": args.positives,
             "negatives": args.negatives,
             "examples": done["examples"],
+            "sizes": done["sizes"],
             "repeat": args.repeat,
             "nproc": len(os.sched_getaffinity(0)),
             "ram_gib": round(psutil.virtual_memory().total / 1024**3, 1),

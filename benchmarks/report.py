@@ -163,20 +163,41 @@ def _notes(doc: dict[str, Any]) -> list[str]:
 
 def update_readme(doc: dict[str, Any], path: Path = README) -> None:
     """Insert or replace this run's size in the README's results section."""
-    text = path.read_text()
-    if START not in text or END not in text:
-        text = text.rstrip("\n") + f"\n\n## Results\n\n{START}\n{PENDING}\n{END}\n"
-    head, rest = text.split(START, 1)
-    body, tail = rest.split(END, 1)
-    runs = dict(re.findall(r"<!-- run:(\S+) -->\n(.*?)\n<!-- /run:\1 -->", body, flags=re.S))
-    runs[run_key(doc)] = render(doc)
+    replace_run(path, run_key(doc), render(doc))
 
-    def order(key: str) -> tuple[int, int]:
-        labels, rows = key.split("x")
+
+def replace_run(
+    path: Path,
+    key: str,
+    block: str,
+    *,
+    start: str = START,
+    end: str = END,
+    tag: str = "run",
+    heading: str = "## Results",
+) -> None:
+    """Insert or replace one run's block (key ``<labels>x<rows>``) between the markers.
+
+    Only the text between ``start`` and ``end`` changes; a README without them gets
+    ``heading`` and the markers appended. Blocks are ordered by rows, then labels.
+    """
+    text = path.read_text()
+    if start not in text or end not in text:
+        text = text.rstrip("\n") + f"\n\n{heading}\n\n{start}\n{PENDING}\n{end}\n"
+    head, rest = text.split(start, 1)
+    body, tail = rest.split(end, 1)
+    pattern = rf"<!-- {tag}:(\S+) -->\n(.*?)\n<!-- /{tag}:\1 -->"
+    runs = dict(re.findall(pattern, body, flags=re.S))
+    runs[key] = block
+
+    def order(k: str) -> tuple[int, int]:
+        labels, rows = k.split("x")
         return int(rows), int(labels)
 
-    blocks = [f"<!-- run:{k} -->\n{runs[k]}\n<!-- /run:{k} -->" for k in sorted(runs, key=order)]
-    path.write_text(head + START + "\n" + "\n\n".join(blocks) + "\n" + END + tail)
+    blocks = [
+        f"<!-- {tag}:{k} -->\n{runs[k]}\n<!-- /{tag}:{k} -->" for k in sorted(runs, key=order)
+    ]
+    path.write_text(head + start + "\n" + "\n\n".join(blocks) + "\n" + end + tail)
 
 
 def main(argv: list[str] | None = None) -> int:

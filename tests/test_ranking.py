@@ -435,3 +435,20 @@ def test_counts_on_a_larger_case() -> None:
     dup = negs.duplicated(["group_id", "item"]).sum()
     assert dup == 0
     assert Counter(out["label"])[1] == len(positives)
+
+
+def test_same_time_basket_is_seen() -> None:
+    # one basket: items 1 and 2 bought at the same instant; neither is the other's negative
+    items = pd.DataFrame({"item": [1, 2, 3], "t": [T0] * 3})
+    positives = pd.DataFrame({"user": [1, 1], "item": [1, 2], "t": [T0 + HOUR] * 2})
+    out = aj.sample_negatives(positives, items, user="user", item="item", time="t")
+    assert out[["group_id", "item", "label"]].values.tolist() == [
+        [0, 1, 1],
+        [0, 3, 0],
+        [1, 2, 1],
+        [1, 3, 0],
+    ]
+    kept = aj.sample_negatives(
+        positives, items, user="user", item="item", time="t", exclude_seen=False
+    )
+    assert sorted(kept[kept["group_id"] == 0]["item"]) == [1, 2, 3]

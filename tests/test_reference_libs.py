@@ -16,7 +16,7 @@ from tests.strategies import PlainCase, plain_cases
 aj = pytest.importorskip("asof_join")
 pl = pytest.importorskip("polars")
 
-EXAMPLES = int(os.environ.get("ASOF_JOIN_EXAMPLES", "250"))
+EXAMPLES = int(os.environ.get("ASOF_JOIN_EXAMPLES", "200"))
 REFERENCE_SETTINGS = settings(
     max_examples=max(EXAMPLES // 2, 10),
     deadline=None,

@@ -18,7 +18,7 @@ from tests.strategies import Case, NumpyDraw, build_spec, cases, make_data, make
 aj = pytest.importorskip("asof_join")
 
 #: Examples per hypothesis test; raise it for a longer soak: ASOF_JOIN_EXAMPLES=5000 pytest ...
-EXAMPLES = int(os.environ.get("ASOF_JOIN_EXAMPLES", "250"))
+EXAMPLES = int(os.environ.get("ASOF_JOIN_EXAMPLES", "200"))
 #: Seeded cases for the numpy loop below (configs x data sets per config).
 SEEDED_CONFIGS = int(os.environ.get("ASOF_JOIN_SEEDED_CONFIGS", "100"))
 SEEDED_PER_CONFIG = int(os.environ.get("ASOF_JOIN_SEEDED_PER_CONFIG", "12"))
@@ -53,7 +53,7 @@ def test_trailing_matches_oracle(case: Case, provenance: bool) -> None:
     check_case(case, provenance=provenance)
 
 
-@settings(CASE_SETTINGS, max_examples=max(EXAMPLES // 3, 10))
+@settings(CASE_SETTINGS, max_examples=max(EXAMPLES // 2, 10))
 @given(case=cases(latest=True, trailing=True, time_kinds=True), provenance=st.booleans())
 def test_time_units_zones_and_dates_match_oracle(case: Case, provenance: bool) -> None:
     check_case(case, provenance=provenance)
@@ -101,4 +101,32 @@ def test_thousands_of_seeded_latest_cases() -> None:
                 )
             assert_frames_match(actual, expected)  # e.g. rows out of order: report as is
         checked += sum(len(p[recipe.labels.name]) > 0 for p in parts)
-    assert checked >= min(1000, SEEDED_CONFIGS * SEEDED_PER_CONFIG // 2)
+    assert checked >= min(1000, SEEDED_CONFIGS * SEEDED_PER_CONFIG * 9 // 10)
+
+
+def test_nanosecond_times_are_truncated_to_microseconds() -> None:
+    # API_DRAFT: times compare at microsecond precision, nanosecond inputs truncated. The label
+    # at 00:00:00.000000500 truncates to 00:00:00, the row's own instant, so strict visibility
+    # hides the row (rounding to .000001 would show it).
+    user = aj.Entity("user", keys=["user_id"])
+    spec = aj.TrainingSetSpec(
+        labels=aj.EventTable("labels", time="t", entities=[user]),
+        features=[aj.Latest(aj.EventTable("rows", time="s", entities=[user]), ["v"])],
+    )
+    labels = pd.DataFrame(
+        {
+            "user_id": [1],
+            "t": pd.Series([pd.Timestamp("2024-01-15 00:00:00.000000500")], dtype="datetime64[ns]"),
+        }
+    )
+    rows = pd.DataFrame(
+        {
+            "user_id": [1],
+            "s": pd.Series([pd.Timestamp("2024-01-15")], dtype="datetime64[us]"),
+            "v": [7],
+        }
+    )
+    data = {"labels": labels, "rows": rows}
+    expected = oracle_build(spec, data)
+    assert expected["v"].tolist() == [None]
+    assert_frames_match(aj.build(spec, data=data).to_pandas(), expected)

@@ -12,7 +12,7 @@ from typing import Any
 import duckdb
 import pyarrow as pa
 
-from ..errors import InputError, NullTimeError, UnreadableInputError
+from ..errors import InputError, NullTimeError, SpecError, UnreadableInputError
 from ..plan import Plan
 from .render import SqlRenderer
 from .sql import literal, quote_ident
@@ -23,6 +23,23 @@ class DuckDBRenderer(SqlRenderer):
 
     SUPPORTS_ASOF_JOIN = True
     SUPPORTS_QUALIFY = True
+
+
+class DuckDBWindowRenderer(DuckDBRenderer):
+    """DuckDB without ASOF JOIN or QUALIFY: the formulation engines like Spark SQL run.
+
+    Selected with ``DuckDBEngine(asof="window")`` so the union-and-window latest lookup is
+    tested against the oracle on DuckDB too.
+    """
+
+    SUPPORTS_ASOF_JOIN = False
+    SUPPORTS_QUALIFY = False
+
+
+_RENDERERS: dict[str, type[DuckDBRenderer]] = {
+    "join": DuckDBRenderer,
+    "window": DuckDBWindowRenderer,
+}
 
 
 _PARQUET = (".parquet", ".pq", ".parq")
@@ -41,7 +58,12 @@ class DuckDBEngine:
         temp_dir: str | os.PathLike[str] | None = None,
         threads: int | None = None,
         connection: duckdb.DuckDBPyConnection | None = None,
+        asof: str = "join",
     ) -> None:
+        if asof not in _RENDERERS:
+            msg = f"asof={asof!r} is not a DuckDB as-of method; choose one of {sorted(_RENDERERS)}"
+            raise SpecError(msg)
+        self.renderer = _RENDERERS[asof]
         self.con = connection if connection is not None else duckdb.connect()
         self.fetch("SET TimeZone = 'UTC'")
         self.fetch("SET enable_progress_bar = false")
@@ -181,7 +203,7 @@ class DuckDBEngine:
     # -- rendering and running -------------------------------------------------------------
 
     def render(self, plan: Plan) -> tuple[str, dict[str, object]]:
-        renderer = DuckDBRenderer(plan, self.sources)
+        renderer = self.renderer(plan, self.sources)
         sql = renderer.render()
         return sql, dict(renderer.params.values)
 

@@ -13,13 +13,26 @@ from ..plan import (
     TimeRef,
     TrailingLookup,
 )
-from .sql import Params, quote_ident
-
-q = quote_ident
+from .sql import Params, literal, quote_ident
 
 
 def _join(parts: Sequence[str], sep: str = ", ") -> str:
     return sep.join(parts)
+
+
+class Names:
+    """Internal names (``__aj_*``) quoted in the renderer's dialect: ``n.row``, ``n("v", 0)``."""
+
+    def __init__(self, quote: Callable[[str], str]) -> None:
+        self._quote = quote
+
+    def __getattr__(self, suffix: str) -> str:
+        if suffix.startswith("_"):
+            raise AttributeError(suffix)
+        return self._quote("__aj_" + suffix)
+
+    def __call__(self, *parts: object) -> str:
+        return self._quote("__aj_" + "".join(str(p) for p in parts))
 
 
 class SqlRenderer:
@@ -32,14 +45,25 @@ class SqlRenderer:
     #: the dialect zips two ordered inputs row by row (POSITIONAL JOIN): label columns then skip
     #: the joins and the final sort
     SUPPORTS_POSITIONAL_JOIN: bool = True
+    #: placeholder prefix of bound parameters
+    PARAM_MARKER: str = "$"
 
     def __init__(self, plan: Plan, sources: dict[str, str]) -> None:
         self.plan = plan
         self.sources = sources  # table name -> relation name the engine registered
-        self.params = Params()
+        self.params = Params(marker=self.PARAM_MARKER, quote=self.literal)
         self.ctes: list[tuple[str, str]] = []
+        self.n = Names(self.q)
 
     # -- hooks a dialect overrides --------------------------------------------------------
+
+    def q(self, name: str) -> str:
+        """An identifier, always quoted (DuckDB: double quotes, doubled inside)."""
+        return quote_ident(name)
+
+    def literal(self, value: str) -> str:
+        """A string literal, for the few places that take no parameter."""
+        return literal(value)
 
     def utc_from_aware(self, expr: str) -> str:
         """A timezone-aware value as a naive UTC timestamp."""
@@ -53,12 +77,33 @@ class SqlRenderer:
         """A naive UTC timestamp as a timezone-aware instant (for provenance output)."""
         return f"timezone('UTC', {expr})"
 
+    def naive_from_utc(self, expr: str) -> str:
+        """A plan time as a naive timestamp (provenance output when no input is aware)."""
+        return expr
+
     def to_timestamp(self, expr: str) -> str:
         return f"CAST({expr} AS TIMESTAMP)"
+
+    def floor_nanos(self, expr: str) -> str:
+        """A nanosecond timestamp floored to a microsecond TIMESTAMP (UTC when aware)."""
+        ns = f"epoch_ns({expr})"
+        return f"make_timestamp(({ns} - (({ns} % 1000) + 1000) % 1000) // 1000)"
 
     def micros(self, value: int) -> str:
         """A duration of `value` microseconds, as a bound parameter."""
         return f"to_microseconds(CAST({self.params.add(value)} AS BIGINT))"
+
+    def time_plus(self, expr: str, value: int) -> str:
+        """A timestamp `value` microseconds later."""
+        return f"{expr} + {self.micros(value)}"
+
+    def time_minus(self, expr: str, value: int) -> str:
+        """A timestamp `value` microseconds earlier."""
+        return f"{expr} - {self.micros(value)}"
+
+    def epoch_us(self, expr: str) -> str:
+        """A timestamp as BIGINT microseconds since the epoch."""
+        return f"epoch_us({expr})"
 
     def arg_max(self, value: str, order: str) -> str:
         """The value on the row with the greatest `order`, kept even when it is null."""
@@ -66,18 +111,54 @@ class SqlRenderer:
 
     def valid_then_order(self, valid: str, ordinal: str) -> str:
         """One sortable key for (valid time, input position): microseconds * 2^40 + position."""
-        return f"CAST(epoch_us({valid}) AS HUGEINT) * 1099511627776 + {ordinal}"
+        return f"CAST({self.epoch_us(valid)} AS HUGEINT) * 1099511627776 + {ordinal}"
 
     def row_number_in_input_order(self) -> str:
         return "row_number() OVER ()"
 
+    def last_non_null(self, expr: str) -> str:
+        """The window function taking the last non-null value of the frame."""
+        return f"last({expr} IGNORE NULLS)"
+
+    def struct_pack(self, fields: Sequence[tuple[str, str]]) -> str:
+        """A struct of (field name, expression) pairs."""
+        return "struct_pack(" + _join([f"{self.q(k)} := {v}" for k, v in fields]) + ")"
+
+    def struct_field(self, expr: str, name: str) -> str:
+        """One field of a struct."""
+        return f"struct_extract({expr}, {self.literal(name)})"
+
+    def count_distinct_over(self, expr: str, flt: str, window: str) -> str:
+        """count(DISTINCT expr) over a named window."""
+        return f"count(DISTINCT {expr}){flt} OVER {window}"
+
+    def never(self, expr: str) -> tuple[str, str]:
+        """An aggregate's argument and FILTER clause that let no row in (an empty window)."""
+        return expr, " FILTER (WHERE false)"
+
+    def shift_left(self, value: str, bits: str) -> str:
+        return f"({value} << {bits})"
+
+    def shift_right(self, value: str, bits: str) -> str:
+        return f"{value} >> {bits}"
+
+    def unnest_range(self, start: str, stop: str) -> str:
+        """One row per integer in [start, stop), as a set-returning select item."""
+        return f"unnest(range({start}, {stop}))"
+
     # -- building blocks --------------------------------------------------------------------
 
     def source(self, table: str) -> str:
-        return q(self.sources[table])
+        return self.q(self.sources[table])
 
     def time_expr(self, ref: TimeRef, alias: str | None = None) -> str:
-        col = q(ref.column) if alias is None else f"{alias}.{q(ref.column)}"
+        col = self.q(ref.column) if alias is None else f"{alias}.{self.q(ref.column)}"
+        if ref.nanos:
+            # an instant (or wall time) in whole microseconds, floored: casts would round
+            ts = self.floor_nanos(col)
+            if ref.zone is not None:
+                return self.utc_from_local(ts, self.params.add(ref.zone))
+            return ts
         if ref.kind == TimeKind.AWARE:
             return self.utc_from_aware(col)
         ts = self.to_timestamp(col)
@@ -87,17 +168,23 @@ class SqlRenderer:
 
     def cte(self, name: str, body: str) -> str:
         self.ctes.append((name, body))
-        return q(name)
+        return self.q(name)
 
-    def qualify(self, select: str, condition: str) -> str:
+    def qualify(self, source: str, window: str, condition: Callable[[str], str]) -> str:
+        """Rows of `source` for which `condition(window expression)` holds."""
         if self.SUPPORTS_QUALIFY:
-            return f"{select}\n    QUALIFY {condition}"
-        return f"SELECT * FROM ({select}) WHERE {condition}"
+            return f"SELECT *\n    FROM {source}\n    QUALIFY {condition(window)}"
+        n = self.n
+        return (
+            f"SELECT * FROM (SELECT *, {window} AS {n.q}\n    FROM {source}) AS {n.qs}\n"
+            f"    WHERE {condition(n.q)}"
+        )
 
     # -- steps ------------------------------------------------------------------------------
 
     def render(self) -> str:
         """The whole query: CTEs for labels and each lookup, then the ordered projection."""
+        q, n = self.q, self.n
         labels = self.render_labels()
         joins: list[str] = []
         exprs: dict[str, str] = {}
@@ -115,9 +202,9 @@ class SqlRenderer:
         if self.SUPPORTS_POSITIONAL_JOIN:
             # narrow rows (position, features) go through the joins and the final sort; the
             # label columns are read once more, in input order, and zipped on by position
-            select = _join(['l."__aj_row"', *projections], ",\n       ")
+            select = _join([f"l.{n.row}", *projections], ",\n       ")
             body = f"SELECT {select}\nFROM {labels} AS l\n" + "\n".join(joins)
-            feats = self.cte("__aj_features", body + '\nORDER BY l."__aj_row"')
+            feats = self.cte("__aj_features", body + f"\nORDER BY l.{n.row}")
             outs = [f"f.{q(out.name)}" for out in self.plan.outputs]
             cols = [f"s.{q(c)}" for c in self.plan.labels.columns] + outs
             final = (
@@ -128,35 +215,37 @@ class SqlRenderer:
         label_cols = [f"l.{q(c)}" for c in self.plan.labels.columns]
         select = _join(label_cols + projections, ",\n       ")
         body = f"SELECT {select}\nFROM {labels} AS l\n" + "\n".join(joins)
-        return f'WITH {self._with_sql()}\n{body}\nORDER BY l."__aj_row"'
+        return f"WITH {self._with_sql()}\n{body}\nORDER BY l.{n.row}"
 
     def _with_sql(self) -> str:
-        return _join([f"{q(n)} AS (\n    {b}\n)" for n, b in self.ctes], ",\n")
+        return _join([f"{self.q(name)} AS (\n    {b}\n)" for name, b in self.ctes], ",\n")
 
     def render_labels(self) -> str:
         lab = self.plan.labels
+        n = self.n
         if self.SUPPORTS_POSITIONAL_JOIN:
-            picked = "".join(f"{q(c)}, " for c in lab.keys)
+            picked = "".join(f"{self.q(c)}, " for c in lab.keys)
         else:
             picked = "*, "
         body = (
-            f'SELECT {self.row_number_in_input_order()} - 1 AS "__aj_row", '
-            f'{picked}{self.time_expr(lab.time)} AS "__aj_t"\n    FROM {self.source(lab.table)}'
+            f"SELECT {self.row_number_in_input_order()} - 1 AS {n.row}, "
+            f"{picked}{self.time_expr(lab.time)} AS {n.t}\n    FROM {self.source(lab.table)}"
         )
         return self.cte("__aj_labels", body)
 
     def rows_cte(self, lookup: Lookup, value_columns: Sequence[str | None]) -> str:
         """Normalized rows of a table: keys, valid time s, known time k, input order, values."""
+        q, n = self.q, self.n
         s = self.time_expr(lookup.valid)
         if lookup.known is not None:
             k = f"greatest({self.time_expr(lookup.known)}, {s})"
         elif lookup.delay_us:
-            k = f"{s} + {self.micros(lookup.delay_us)}"
+            k = self.time_plus(s, lookup.delay_us)
         else:
             k = s
-        keys = [f'{q(c)} AS "__aj_k{i}"' for i, c in enumerate(lookup.table_keys)]
+        keys = [f"{q(c)} AS {n('k', i)}" for i, c in enumerate(lookup.table_keys)]
         vals = [
-            f'{q(c) if c is not None else "NULL"} AS "__aj_v{i}"'
+            f"{q(c) if c is not None else 'NULL'} AS {n('v', i)}"
             for i, c in enumerate(value_columns)
         ]
         where = [f"{q(c)} IS NOT NULL" for c in lookup.table_keys]
@@ -164,8 +253,8 @@ class SqlRenderer:
         if lookup.known is not None:
             where.append(f"{q(lookup.known.column)} IS NOT NULL")
         body = (
-            f'SELECT {_join(keys)}, {s} AS "__aj_s", {k} AS "__aj_kt", '
-            f'{self.row_number_in_input_order()} AS "__aj_ord"'
+            f"SELECT {_join(keys)}, {s} AS {n.s}, {k} AS {n.kt}, "
+            f"{self.row_number_in_input_order()} AS {n.ord}"
             + (", " + _join(vals) if vals else "")
             + f"\n    FROM {self.source(lookup.table)}\n    WHERE {_join(where, ' AND ')}"
         )
@@ -173,58 +262,103 @@ class SqlRenderer:
 
     def timeline_cte(self, lookup: LatestLookup, rows: str) -> str:
         """One row per lookup time such that the newest one before t is the answer at t."""
-        keys = [f'"__aj_k{i}"' for i in range(len(lookup.table_keys))]
-        vals = [f'"__aj_v{i}"' for i in range(len(lookup.values))]
+        n = self.n
+        keys = [n("k", i) for i in range(len(lookup.table_keys))]
+        vals = [n("v", i) for i in range(len(lookup.values))]
         if lookup.reduction == Reduction.VALID:
             # ties on (key, valid time): the last row in input order wins
-            picks = [self.arg_max(v, '"__aj_ord"') + f" AS {v}" for v in vals]
-            at = '"__aj_s"'
+            picks = [self.arg_max(v, n.ord) + f" AS {v}" for v in vals]
+            at = n.s
             if lookup.delay_us:
-                at = f'"__aj_s" + {self.micros(lookup.delay_us)}'
+                at = self.time_plus(n.s, lookup.delay_us)
             body = (
-                f'SELECT {_join(keys)}, "__aj_s", {at} AS "__aj_at"'
+                f"SELECT {_join(keys)}, {n.s}, {at} AS {n.at}"
                 + "".join(", " + p for p in picks)
-                + f'\n    FROM {rows} GROUP BY {_join(keys)}, "__aj_s"'
+                + f"\n    FROM {rows} GROUP BY {_join(keys)}, {n.s}"
             )
             return self.cte(f"__aj_line{lookup.step}", body)
         # known-time column: collapse each (key, known time) batch to its newest row (greatest
         # valid time, then last in input order), then keep a row when its valid time is at
         # least the running max of valid times known strictly before it
-        order = self.valid_then_order('"__aj_s"', '"__aj_ord"')
-        picks = [self.arg_max(v, order) + f" AS {v}" for v in ['"__aj_s"', *vals]]
+        order = self.valid_then_order(n.s, n.ord)
+        picks = [self.arg_max(v, order) + f" AS {v}" for v in [n.s, *vals]]
         grouped = self.cte(
             f"__aj_batch{lookup.step}",
-            f'SELECT {_join(keys)}, "__aj_kt" AS "__aj_at", {_join(picks)}\n'
-            f'    FROM {rows} GROUP BY {_join(keys)}, "__aj_kt"',
+            f"SELECT {_join(keys)}, {n.kt} AS {n.at}, {_join(picks)}\n"
+            f"    FROM {rows} GROUP BY {_join(keys)}, {n.kt}",
         )
         running = (
-            f'max("__aj_s") OVER (PARTITION BY {_join(keys)} ORDER BY "__aj_at" '
+            f"max({n.s}) OVER (PARTITION BY {_join(keys)} ORDER BY {n.at} "
             "ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING)"
         )
-        select = f"SELECT *\n    FROM {grouped}"
-        cond = f'"__aj_s" >= coalesce({running}, "__aj_s")'
-        return self.cte(f"__aj_line{lookup.step}", self.qualify(select, cond))
+        body = self.qualify(grouped, running, lambda w: f"{n.s} >= coalesce({w}, {n.s})")
+        return self.cte(f"__aj_line{lookup.step}", body)
+
+    def latest_by_window(self, lookup: LatestLookup, line: str) -> str:
+        """The latest lookup without an as-of join: labels and timeline rows in one window.
+
+        Per key, label rows (at t) and timeline rows (at their lookup time) are sorted together
+        and each label takes the payload of the last timeline row before it. At equal times a
+        label sorts before the row when visibility is strict (k < t) and after it when inclusive
+        (k <= t). Lookup times are unique per key in a timeline, so the order is total. The
+        payload is a struct: a null value in the chosen row stays null. Labels with a null key
+        or time take no part and get nulls from the outer join.
+        """
+        q, n = self.q, self.n
+        keys = [n("k", i) for i in range(len(lookup.table_keys))]
+        names = ["__aj_s", "__aj_at", *(f"__aj_v{i}" for i in range(len(lookup.values)))]
+        label_kind, row_kind = (1, 0) if lookup.inclusive else (0, 1)
+        payload = self.struct_pack([(name, q(name)) for name in names])
+        label_keys = [f"{q(c)} AS {n('k', i)}" for i, c in enumerate(lookup.label_keys)]
+        present = [f"{q(c)} IS NOT NULL" for c in lookup.label_keys] + [f"{n.t} IS NOT NULL"]
+        union = self.cte(
+            f"__aj_lu{lookup.step}",
+            f"SELECT {_join(keys)}, {n.at} AS {n.p}, {row_kind} AS {n.kind}, "
+            f"CAST(NULL AS BIGINT) AS {n.row}, {payload} AS {n.pay}\n    FROM {line}\n"
+            f"    UNION ALL\n    SELECT {_join(label_keys)}, {n.t}, {label_kind}, {n.row}, NULL\n"
+            f"    FROM {n.labels}\n    WHERE {_join(present, ' AND ')}",
+        )
+        window = (
+            f"PARTITION BY {_join(keys)} ORDER BY {n.p}, {n.kind} "
+            "ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW"
+        )
+        fields = [f"{self.struct_field(n.pay, name)} AS {q(name)}" for name in names]
+        body = (
+            f"SELECT {n.row}, {_join(fields)}\n"
+            f"    FROM (SELECT {n.row}, {self.last_non_null(n.pay)} OVER ({window}) AS {n.pay}\n"
+            f"    FROM {union}) AS {n.picked}\n    WHERE {n.row} IS NOT NULL"
+        )
+        return self.cte(f"__aj_lw{lookup.step}", body)
 
     def render_LatestLookup(
         self, lookup: LatestLookup, label: str
     ) -> tuple[str, dict[tuple[str, int], str]]:
+        q, n = self.q, self.n
         rows = self.rows_cte(lookup, [v.column for v in lookup.values])
         line = self.timeline_cte(lookup, rows)
         alias = f"f{lookup.step}"
-        on = [f'{label}.{q(lc)} = {alias}."__aj_k{i}"' for i, lc in enumerate(lookup.label_keys)]
-        op = ">=" if lookup.inclusive else ">"
-        on.append(f'{label}."__aj_t" {op} {alias}."__aj_at"')
-        join = f"ASOF LEFT JOIN {line} AS {alias} ON {_join(on, ' AND ')}"
+        if self.SUPPORTS_ASOF_JOIN:
+            on = [
+                f"{label}.{q(lc)} = {alias}.{n('k', i)}" for i, lc in enumerate(lookup.label_keys)
+            ]
+            op = ">=" if lookup.inclusive else ">"
+            on.append(f"{label}.{n.t} {op} {alias}.{n.at}")
+            join = f"ASOF LEFT JOIN {line} AS {alias} ON {_join(on, ' AND ')}"
+        else:
+            picked = self.latest_by_window(lookup, line)
+            join = f"LEFT JOIN {picked} AS {alias} ON {alias}.{n.row} = {label}.{n.row}"
         columns: dict[tuple[str, int], str] = {}
         for i, v in enumerate(lookup.values):
-            val = f'{alias}."__aj_v{i}"'
-            s = f'{alias}."__aj_s"'
-            at = f'{alias}."__aj_at"'
+            val = f"{alias}.{n('v', i)}"
+            s = f"{alias}.{n.s}"
+            at = f"{alias}.{n.at}"
             if v.max_age_us is not None:
-                fresh = f'{s} >= {label}."__aj_t" - {self.micros(v.max_age_us)}'
+                fresh = f"{s} >= {self.time_minus(f'{label}.{n.t}', v.max_age_us)}"
                 val, s, at = (f"CASE WHEN {fresh} THEN {x} END" for x in (val, s, at))
             if self.plan.aware and v.provenance:
                 s, at = self.aware_from_utc(s), self.aware_from_utc(at)
+            elif v.provenance:
+                s, at = self.naive_from_utc(s), self.naive_from_utc(at)
             columns[("value", i)] = val
             columns[("time", i)] = s
             columns[("known_at", i)] = at

@@ -1223,9 +1223,15 @@ class _Auditor:
         raise AssertionError(msg)  # pragma: no cover
 
     def _rows_sql(
-        self, lookup: LatestLookup | TrailingLookup, columns: Sequence[str], p: Params
+        self,
+        lookup: LatestLookup | TrailingLookup,
+        columns: Sequence[str],
+        p: Params,
+        *,
+        positions: bool = False,
     ) -> str:
-        """A table's rows as the engine sees them: keys, s, k (epoch micros), values, position."""
+        """A table's rows as the engine sees them: keys, s, k (epoch micros), values v0..., and
+        with ``positions`` their 0-based input position ``src_pos`` (a costlier scan)."""
         types = self.source_types[lookup.table]
         view = q(self.sources[lookup.table])
         s = self._us(lookup.valid.column, types, p, lookup.valid.zone)
@@ -1241,11 +1247,13 @@ class _Auditor:
         where.append(f"{q(lookup.valid.column)} IS NOT NULL")
         if lookup.known is not None:
             where.append(f"{q(lookup.known.column)} IS NOT NULL")
+        source = (
+            f"(SELECT row_number() OVER () - 1 AS src_pos, * FROM {view})" if positions else view
+        )
         return (
-            f"SELECT src_pos, {', '.join(keys)}, {s} AS s, {k} AS k"
+            f"SELECT {'src_pos, ' if positions else ''}{', '.join(keys)}, {s} AS s, {k} AS k"
             + "".join(", " + v for v in vals)
-            + f" FROM (SELECT row_number() OVER () - 1 AS src_pos, * FROM {view})"
-            + f" WHERE {' AND '.join(where)}"
+            + f" FROM {source} WHERE {' AND '.join(where)}"
         )
 
     # -- source rules ----------------------------------------------------------------------
@@ -1260,8 +1268,12 @@ class _Auditor:
                 if lookup.known is not None:
                     self._known_before_valid(lookup)
             if isinstance(lookup, LatestLookup):
+                # one check per column: several features may read it (e.g. with other max_age)
+                readers: dict[str, list[str]] = {}
                 for value in lookup.values:
-                    self._ambiguous(lookup, value.column, value.output)
+                    readers.setdefault(value.column, []).append(value.output)
+                for column, outputs in readers.items():
+                    self._ambiguous(lookup, column, outputs)
 
     def _known_before_valid(self, lookup: LatestLookup | TrailingLookup) -> None:
         assert lookup.known is not None
@@ -1271,6 +1283,9 @@ class _Auditor:
         k = self._us(lookup.known.column, types, p, lookup.known.zone)
         view = q(self.sources[lookup.table])
         keys = [q(c) for c in lookup.table_keys]
+        # a cheap count first: positions need an ordered scan
+        if not self._scalar_rows(f"SELECT count(*) FROM {view} WHERE {k} < {s}", p)[0][0]:
+            return
         found = self._fetch(
             f"SELECT src_pos, {', '.join(keys)}, {q(lookup.valid.column)} AS valid_time, "
             f"{q(lookup.known.column)} AS known_at FROM (SELECT row_number() OVER () - 1 AS "
@@ -1292,19 +1307,25 @@ class _Auditor:
             table=lookup.table,
         )
 
-    def _ambiguous(self, lookup: LatestLookup | TrailingLookup, column: str, output: str) -> None:
-        p = Params()
-        rows = self._rows_sql(lookup, [column], p)
+    def _ambiguous(self, lookup: LatestLookup, column: str, outputs: list[str]) -> None:
         keys = [f'"__aj_k{j}"' for j in range(len(lookup.table_keys))]
         group = ", ".join([*keys, "s", "k"])
         on = " AND ".join(f"r.{c} = g.{c}" for c in [*keys, "s", "k"])
+        ambiguous = (
+            f"SELECT {group} FROM r GROUP BY {group} HAVING count(*) > 1 AND "
+            "(min(v0) <> max(v0) OR (count(v0) > 0 AND count(v0) < count(*)))"
+        )
+        # a cheap count first: positions need an ordered scan
+        p = Params()
+        rows = self._rows_sql(lookup, [column], p)
+        count = f"WITH r AS ({rows}) SELECT count(*) FROM ({ambiguous})"
+        if not self._scalar_rows(count, p)[0][0]:
+            return
+        p = Params()
+        rows = self._rows_sql(lookup, [column], p, positions=True)
         found = self._fetch(
             f"""
-            WITH r AS ({rows}),
-            g AS (
-                SELECT {group} FROM r GROUP BY {group}
-                HAVING count(DISTINCT v0) + CASE WHEN count(v0) < count(*) THEN 1 ELSE 0 END > 1
-            )
+            WITH r AS ({rows}), g AS ({ambiguous})
             SELECT r.src_pos, r.v0 AS value, r.s, r.k,
                    dense_rank() OVER (ORDER BY {", ".join(f"r.{c}" for c in [*keys, "s", "k"])})
                        AS grp
@@ -1339,12 +1360,12 @@ class _Auditor:
             None,
             pos,
             f"{found.num_rows:,} rows of table {lookup.table!r} fall in {groups:,} groups with "
-            f"equal key, valid and known time but different {column!r} values (feature "
-            f"{output!r}); the build keeps the last in input order, so the result depends on "
-            "load order",
+            f"equal key, valid and known time but different {column!r} values (read by "
+            f"{', '.join(map(repr, outputs))}); the build keeps the last in input order, so "
+            "the result depends on load order",
             examples,
             table=lookup.table,
-            details={"groups": groups, "column": column, "feature": output},
+            details={"groups": groups, "column": column, "features": outputs},
         )
 
     def _source_examples(

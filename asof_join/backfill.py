@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import contextlib
 import datetime as dt
-import fcntl
 import hashlib
 import json
 import os
@@ -510,6 +509,11 @@ class _Folder:
     @contextlib.contextmanager
     def locked(self, *, wait: bool) -> Iterator[None]:
         """Hold the folder's lock (fcntl.flock); fail naming the holder's pid, or wait."""
+        try:
+            import fcntl
+        except ImportError:  # pragma: no cover - Windows
+            msg = "backfill() locks its folder with fcntl.flock, which needs a POSIX system"
+            raise InputError(msg) from None
         self.out.mkdir(parents=True, exist_ok=True)
         fd = os.open(self.out / LOCK, os.O_RDWR | os.O_CREAT, 0o644)
         try:

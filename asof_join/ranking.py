@@ -211,6 +211,7 @@ def sample_negatives(
 
     con = duckdb.connect()
     try:
+        con.execute("SET enable_progress_bar = false").fetchall()
         if threads is not None:
             con.execute(f"SET threads = {int(threads)}").fetchall()
         n_pos = pos_arrow.num_rows

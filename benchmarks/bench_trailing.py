@@ -24,7 +24,7 @@ from methods import RESULT_MARKER, _lit, _peak_rss, _rss
 
 HERE = Path(__file__).resolve().parent
 README = HERE / "README.md"
-SECTION = "## Trailing windows"
+SECTION = "# Trailing windows"
 START = "<!-- trailing-results:start -->"
 END = "<!-- trailing-results:end -->"
 MIB = 1024 * 1024
@@ -158,7 +158,8 @@ def ensure_trailing_data(
     cache = Path(cache_dir or datagen.DEFAULT_CACHE)
     n_cust = max(10, n_views // per_customer)
     vdir = cache / f"trailing_views{n_views}_cust{n_cust}_seed{seed}"
-    ldir = vdir / f"labels{n_labels}"
+    offsets = sorted(set(tie_offsets_us))
+    ldir = vdir / f"labels{n_labels}_ties_{'_'.join(_fmt_window(o) for o in offsets)}"
     views, labels = vdir / "views.parquet", ldir / "labels.parquet"
 
     vman = {"version": GEN_VERSION, "views": n_views, "customers": n_cust, "seed": seed}
@@ -170,8 +171,7 @@ def ensure_trailing_data(
         vman_path.write_text(json.dumps(vman))
         force = True  # labels copy times from the views: rebuild them too
 
-    offsets = sorted(set(tie_offsets_us))
-    lman = {**vman, "labels": n_labels, "tie_offsets_us": offsets}
+    lman = {**vman, "labels": n_labels}
     lman_path = ldir / "manifest.json"
     if force or not datagen._manifest_ok(lman_path, lman) or not labels.exists():
         print(f"generating labels: {n_labels:,} rows -> {labels}", flush=True)
@@ -255,7 +255,7 @@ def polars_rolling(params: dict[str, Any]) -> Any:
     A label at t is placed at t - d with window w - d and ``closed="none"``, so it reads the
     views with t - w < viewed_at < t - d: the open interval makes both the window's far edge
     and strict visibility exclusive. Label rows carry a null amount and a zero row count, so
-    they add nothing to any window. (Three rolling_sum_by calls: polars has no rolling count.)
+    they add nothing to any window. Three rolling sums: rows, amounts and non-null amounts.
     """
     import polars as pl
 
@@ -483,10 +483,12 @@ def compare(ref: dict[str, Any], got: dict[str, Any], n: int) -> dict[str, int]:
 def _verify(
     case: dict[str, Any], dumps: dict[str, Path], label_ids: Any, label_types: list[str]
 ) -> list[str]:
-    """Rows, label order, columns and types of each method, and its values against build()
-    (build() itself against the range join); fills each method's "check"; returns problems."""
+    """Rows, label order, columns and types of each method, and its values against a
+    reference: build() against the range join, polars against build(). Fills each method's
+    "check"; returns the problems found."""
     import numpy as np
 
+    refs = {"build": "range_join", "polars": "build"}
     failures: list[str] = []
     loaded = {m: _load(p) for m, p in dumps.items()}
     for method, res in case["methods"].items():
@@ -505,15 +507,26 @@ def _verify(
         order = int((ids != label_ids[:n]).sum()) if len(ids) == n else n
         if order:
             problems.append(f"{order} rows out of label input order")
-        ref = "range_join" if method == "build" else "build"
-        check: dict[str, Any] = {"reference": ref, "label_order_mismatches": order}
+        # A window without a non-null amount (mean null) must sum to exactly 0.
+        residue = int((np.isnan(got["amount_mean"]) & (got["amount_sum"] != 0)).sum())
+        ref = refs.get(method)
+        check: dict[str, Any] = {
+            "reference": ref,
+            "label_order_mismatches": order,
+            "nonzero_empty_sums": residue,
+        }
         if ref in loaded and not case["methods"][ref].get("error"):
             common = min(n, case["methods"][ref]["labels_run"])
             mism = compare(loaded[ref], got, common)
             check["compared_rows"] = common
             check["value_mismatches"] = mism
             if any(mism.values()):
-                problems.append(f"value mismatches vs {ref} on {common:,} rows: {mism}")
+                why = (
+                    f" ({residue:,} of its {n:,} windows without an amount sum to non-zero)"
+                    if residue
+                    else ""
+                )
+                problems.append(f"value mismatches vs {ref} on {common:,} rows: {mism}{why}")
         check["nulls"] = {c: int(np.isnan(got[c]).sum()) for c in VALUES if c in got}
         check["ok"] = not problems
         check["problems"] = problems
@@ -527,6 +540,8 @@ def _verify(
 
 
 def _fmt_window(us: int) -> str:
+    if us == 0:
+        return "0"
     for unit, size in (("d", US_PER_DAY), ("h", 3_600_000_000), ("m", 60_000_000)):
         if us % size == 0:
             return f"{us // size}{unit}"
@@ -668,13 +683,14 @@ def _result(m: dict[str, Any]) -> str:
     check = m.get("check")
     if not check:
         return "unchecked"
-    if not check["ok"]:
-        mism = sum((check.get("value_mismatches") or {}).values())
-        return f"**{mism} mismatches**" if mism else "**wrong**"
     rows = check.get("compared_rows")
-    if rows is None:
-        return "not compared"
-    return f"= {SHORT[check['reference']]} on {rows:,} rows"
+    mism = sum((check.get("value_mismatches") or {}).values())
+    versus = "" if rows is None else f" vs {SHORT[check['reference']]} on {rows:,} rows"
+    if not check["ok"]:
+        return f"**{mism} mismatches{versus}**" if mism else "**wrong**"
+    if check["reference"] is None:
+        return "reference"
+    return "not compared" if rows is None else f"0 mismatches{versus}"
 
 
 def _seconds(doc: dict[str, Any], case: str, method: str) -> float | None:
@@ -763,7 +779,7 @@ def render(doc: dict[str, Any], heading_level: int = 3) -> str:
         )
     notes += [
         f"Views: {doc['views']:,} rows, {doc['customers']:,} customers; the fixed-delay case "
-        f"declares `delay={_fmt_window(doc['delay_us']) if doc['delay_us'] else '0'}`. "
+        f"declares `delay={_fmt_window(doc['delay_us'])}`. "
         f"Aggregates: {doc['aggregates']}.",
         "Times cover reading the Parquet inputs, the aggregation, restoring label input order "
         "and materializing the result (Arrow for build() and DuckDB, a DataFrame for polars); "

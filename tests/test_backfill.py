@@ -560,6 +560,7 @@ def reference_run(files: Path, out: Path) -> dict[str, bytes]:
     return contents(out)
 
 
+@pytest.mark.slow
 def test_killed_runs_end_with_the_files_of_an_uninterrupted_run(
     nursery_files: Path, tmp_path: Path
 ) -> None:
@@ -594,6 +595,7 @@ def test_killed_runs_end_with_the_files_of_an_uninterrupted_run(
     assert kills >= 4  # the kills did land mid-run
 
 
+@pytest.mark.slow
 def test_a_second_run_on_the_same_folder_fails_or_waits(
     nursery_files: Path, tmp_path: Path
 ) -> None:

@@ -219,8 +219,13 @@ def _sweep(
             assert x is not None
             xv = f"CAST({x} AS BIGINT)" if v.integer else x
             total = running(f"s{i}", f"coalesce({xv}, 0)", j)
-            expr = f"coalesce({total}, 0)"
-            outs.append(f"CAST({expr} AS BIGINT)" if v.integer else expr)
+            if v.integer:
+                outs.append(f"CAST(coalesce({total}, 0) AS BIGINT)")
+            else:
+                # a float running sum can leave 1e-13 behind when every value has left the
+                # window: an empty window is exactly 0, decided by the exact running count
+                nonnull = running(f"c{i}", f"CASE WHEN {x} IS NULL THEN 0 ELSE 1 END", j)
+                outs.append(f"CASE WHEN coalesce({nonnull}, 0) = 0 THEN 0.0 ELSE {total} END")
         elif v.agg in ("mean", "std"):
             assert x is not None
             cnt_sum = running(f"n{i}", f"CASE WHEN {x} IS NULL THEN 0 ELSE 1 END", j)

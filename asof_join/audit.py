@@ -626,8 +626,9 @@ class _Auditor:
                     )
                 extra = (f"{name}__time", f"{name}__known_at")
                 has = isinstance(feat, Latest) and all(c in present for c in extra)
-                if has:
-                    provenance_columns.update(extra)
+                if isinstance(feat, Latest):
+                    # never label columns, even alone: the recomputation outputs these names
+                    provenance_columns.update(c for c in extra if c in present)
                 self.outputs.append(_Output(name, feat, index, has))
         outputs = {o.name for o in self.outputs}
         self.label_columns = [c for c in names if c not in outputs and c not in provenance_columns]
@@ -720,7 +721,7 @@ class _Auditor:
 
         audit_spec = TrainingSetSpec(
             labels=spec.labels.model_copy(update={"name": self.frame_name, "path": None}),
-            features=features,
+            features=tuple(features),
             timezone=spec.timezone,
         )
         self._keep.append(label_data)
@@ -840,7 +841,7 @@ class _Auditor:
                 severity=severity or RULE_SEVERITY[rule],
                 feature=None if out is None else out.name,
                 rows=len(positions) if rows is None else rows,
-                positions=[int(x) for x in positions],
+                positions=np.asarray(positions, dtype=np.int64).tolist(),
                 examples=examples,
                 message=message,
                 table=table if table is not None else (None if out is None else out.table),
@@ -938,7 +939,7 @@ class _Auditor:
                 rule,
                 out,
                 hit,
-                f"{self._share(len(hit))} of {out.name!r} {text}",
+                f"{self._share(len(hit))} of {out.name!r}: the value {text}",
                 self._examples(out, hit, extra),
             )
 
@@ -1083,9 +1084,9 @@ class _Auditor:
                 Rule.VALUE_MISMATCH,
                 out,
                 hit,
-                f"{self._share(len(hit))} of {out.name!r} differ from the point-in-time value "
-                f"and equal the value of a row of {table!r} not yet visible at the label time "
-                "(leakage)",
+                f"{self._share(len(hit))} of {out.name!r}: the value differs from the "
+                f"point-in-time value and equals that of a row of {table!r} not yet visible at "
+                "the label time (leakage)",
                 self._examples(
                     out,
                     hit,
@@ -1101,7 +1102,7 @@ class _Auditor:
                 Rule.STALE_VALUE,
                 out,
                 hit,
-                f"{self._share(len(hit))} of {out.name!r} hold the value of a row of {table!r} "
+                f"{self._share(len(hit))} of {out.name!r}: the value is that of a row of {table!r} "
                 f"older than max_age {ma_text} at the label time (the point-in-time value is "
                 "null)",
                 self._examples(
@@ -1114,9 +1115,9 @@ class _Auditor:
                 Rule.VALUE_MISMATCH,
                 out,
                 hit,
-                f"{self._share(len(hit))} of {out.name!r} differ from the point-in-time value "
-                f"and match no row of {table!r} that was not yet visible (cause unknown: "
-                "another source, a transformation or a bug)",
+                f"{self._share(len(hit))} of {out.name!r}: the value differs from the "
+                f"point-in-time value and matches no row of {table!r} that was not yet visible "
+                "(cause unknown: another source, a transformation or a bug)",
                 self._examples(out, hit, pick(unknown, point_in_time=pit)),
                 severity=Severity.WARNING,
                 cause=Cause.UNKNOWN,
@@ -1147,7 +1148,7 @@ class _Auditor:
             features.append(feat.model_copy(update={"table": leaky}))
         spec = TrainingSetSpec(
             labels=self.spec.labels.model_copy(update={"name": self.frame_name, "path": None}),
-            features=features,
+            features=tuple(features),
             timezone=self.spec.timezone,
         )
         tables = {f.table.name for f in features}
@@ -1192,20 +1193,20 @@ class _Auditor:
                         v for v, m in zip(leaky_py, mask, strict=True) if m
                     ]
                     text = (
-                        "differ from the point-in-time aggregate and equal the aggregate that "
+                        "differs from the point-in-time aggregate and equals the aggregate that "
                         f"also counts rows of {out.table!r} not yet visible at the label time "
                         "(known later, or stamped at the label time): leakage"
                     )
                 else:
                     text = (
-                        "differ from the point-in-time aggregate (cause unknown: another "
+                        "differs from the point-in-time aggregate (cause unknown: another "
                         "window, source or bug)"
                     )
                 self._add(
                     Rule.VALUE_MISMATCH,
                     out,
                     hit,
-                    f"{self._share(len(hit))} of {name!r} {text}",
+                    f"{self._share(len(hit))} of {name!r}: the value {text}",
                     self._examples(out, hit, extra),
                     severity=Severity.WARNING if cause is Cause.UNKNOWN else Severity.ERROR,
                     cause=cause,

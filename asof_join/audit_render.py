@@ -193,7 +193,7 @@ def _svg_chart(hist: AgeHistogram) -> str:
         x = left + i * (bar + gap)
         h_clean = _bar_height(clean, peak, height)
         h_flag = _bar_height(flagged, peak, height)
-        y = top + height
+        y = float(top + height)
         tip = f"age {label}: {clean:,} clean, {flagged:,} flagged"
         items.append(f"<g><title>{_e(tip)}</title>")
         if h_clean:

@@ -274,7 +274,16 @@ def _demo(args: argparse.Namespace) -> int:
         if args.dir is not None:
             result.write_parquet(folder / "train.parquet")
 
+        started = time.perf_counter()
+        report = aj.audit(train, spec, data=data, label="returned")
+        audited = time.perf_counter() - started
         print(_demo_summary(spec, sizes, train, leaks, made=made, built=built, seed=args.seed))
+        verdict = "ok" if report.ok else "FAILED"
+        rules = ", ".join(f"{f.rule.value} x{f.rows}" for f in report.findings) or "no findings"
+        print(
+            f"\naudit of the built set (recomputed from the sources): {verdict}; {rules}; "
+            f"{audited:.1f}s"
+        )
         kept = f"{folder} (with train.parquet)" if args.dir is not None else "a temp dir, removed"
         print(f"\nspec: asof_join/specs/nursery.yaml\ndata: {kept}")
     return EXIT_OK
@@ -355,7 +364,14 @@ def _spark_session() -> object:
     except ImportError:
         msg = "--engine spark needs pyspark: pip install 'asof_join[spark]'"
         raise UsageError(msg) from None
-    return SparkSession.builder.master("local[1]").appName("asof-join").getOrCreate()
+    session = (
+        SparkSession.builder.master("local[1]")
+        .appName("asof-join")
+        .config("spark.ui.showConsoleProgress", "false")  # keep stderr for our messages
+        .getOrCreate()
+    )
+    session.sparkContext.setLogLevel("ERROR")
+    return session
 
 
 def _one_line(err: BaseException) -> str:

@@ -543,13 +543,12 @@ def _draw(
         # A uniform draw is acceptable with probability pool / n and new with probability
         # about 1 - rem / pool: draw 1.2x the remainder plus 4 over that rate (rarely short:
         # those groups go to the next round, which draws four times more, then to
-        # enumeration). Popular acceptance is unknown without enumerating (seen items may be
-        # popular), so its rounds draw twice the remainder plus 8, growing the same way.
+        # enumeration). A popular draw's acceptance is unknown without enumerating (it is
+        # lower when the user has seen popular items): its first round assumes all draws are
+        # acceptable and leaves the groups it leaves short to the next rounds.
         scale = 4**rnd
-        if popular:
-            k = f"(2 * rem + 8) * {scale}"
-        else:
-            k = f"ceil((1.2 * rem + 4) * {scale} * n / pool * (1 + rem / pool))::BIGINT"
+        rate = "" if popular else " * n / pool"
+        k = f"ceil((1.2 * rem + 4) * {scale}{rate} * (1 + rem / pool))::BIGINT"
         sql = _ROUND.format(
             k=k, pick_item=pick_item, pick_join=pick_join, keep=keep, keep_join=_KEEP_JOIN
         )

@@ -154,8 +154,11 @@ def main(argv: list[str] | None = None) -> int:
         if f.rule is aj.Rule.VALUE_MISMATCH and f.feature == "price"
         for p in f.positions
     }
+    others = [
+        f for f in report.findings if f.rule is not aj.Rule.VALUE_MISMATCH or f.feature != "price"
+    ]
     checks[name] = {"planted": len(planted), "found": len(found), "exact": found == planted}
-    if found != planted:
+    if found != planted or others:
         print(f"planted {len(planted)} leaks, audit found {len(found)}", file=sys.stderr)
         print(report, file=sys.stderr)
         return 1

@@ -234,6 +234,13 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--timeout", type=float, default=3600.0)
     parser.add_argument("--out", type=Path, help="write the results as JSON")
     parser.add_argument("--readme", action="store_true", help="write the results section")
+    parser.add_argument(
+        "--merge",
+        type=Path,
+        nargs="*",
+        default=[],
+        help="earlier result JSON files (same sizes) whose other methods join this report",
+    )
     args = parser.parse_args(argv)
     chosen = [m for m in args.only.split(",") if m]
     unknown = [m for m in chosen if m not in METHODS]
@@ -291,6 +298,15 @@ def main(argv: list[str] | None = None) -> int:
         },
         "methods": summary,
     }
+    for path in args.merge:
+        earlier = json.loads(path.read_text())
+        same = all(earlier["meta"][k] == result["meta"][k] for k in ("positives", "negatives"))
+        if not same:
+            print(f"{path}: other sizes, not merged", file=sys.stderr)
+            return 1
+        merged = {**earlier["methods"], **summary}
+        result["methods"] = {m: merged[m] for m in METHODS if m in merged}
+        result["meta"]["merged"] = [*result["meta"].get("merged", []), earlier["meta"]["date"]]
     text = render(result)
     print(text)
     if args.out:

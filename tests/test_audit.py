@@ -372,6 +372,16 @@ def test_inclusive_tables_accept_rows_known_at_the_label_time() -> None:
     assert only(report, aj.Rule.NOT_YET_KNOWN, "plan").positions == [2]
 
 
+def test_half_provenance_is_recomputed() -> None:
+    spec, frame = _hand_made(inclusive=False)
+    plans = pd.DataFrame(
+        {"user": [1, 2, 3], "s": pd.to_datetime(["2024-01-01"] * 3), "plan": ["a", "b", "c"]}
+    )
+    report = aj.audit(frame.drop(columns=["plan__known_at"]), spec, data={"plans": plans})
+    assert report.checked == {"plan": "recomputation"}
+    assert rules(report) == set()
+
+
 def test_timezone_aware_provenance(spec: aj.TrainingSetSpec, data: dict[str, pa.Table]) -> None:
     aware = {}
     for name, table in data.items():
@@ -628,6 +638,16 @@ def test_cli_audit_clean_exits_0(capsys: pytest.CaptureFixture[str], project: Pa
     )
     assert (code, err) == (0, "")
     assert out.startswith("asof-join audit: OK: no findings")
+
+
+def test_cli_audit_reads_csv(
+    capsys: pytest.CaptureFixture[str], project: Path, tmp_path: Path
+) -> None:
+    csv = tmp_path / "clean.csv"
+    pq.read_table(project / "clean.parquet").to_pandas().to_csv(csv, index=False)
+    code, out, err = run(capsys, "audit", str(csv), "--spec", str(project / "spec.yaml"))
+    assert (code, err) == (0, "")
+    assert "OK: no findings" in out
 
 
 def test_cli_audit_findings_exit_1_and_json(

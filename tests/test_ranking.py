@@ -452,3 +452,35 @@ def test_same_time_basket_is_seen() -> None:
         positives, items, user="user", item="item", time="t", exclude_seen=False
     )
     assert sorted(kept[kept["group_id"] == 0]["item"]) == [1, 2, 3]
+
+
+@pytest.mark.parametrize("sampler", ["uniform", "popular"])
+def test_frequencies_on_the_rejection_path(sampler: str) -> None:
+    # 40 candidates, one draw each: pools far larger than asked, so no enumeration
+    stats = pytest.importorskip("scipy.stats")
+    n_items, n_pos = 40, 8_000
+    items = pd.DataFrame({"item": np.arange(n_items), "t": [T0] * n_items})
+    weights = np.arange(1, n_items + 1)
+    log = pd.DataFrame(
+        {
+            "user": -np.arange(weights.sum()) - 1,
+            "item": np.repeat(np.arange(n_items), weights),
+            "t": T0 + HOUR,
+        }
+    )
+    positives = pd.DataFrame({"user": np.arange(n_pos), "item": 99, "t": T0 + 2 * HOUR})
+    out = aj.sample_negatives(
+        positives,
+        items,
+        user="user",
+        item="item",
+        time="t",
+        per_positive=1,
+        sampler=sampler,
+        interactions=log,
+        seed=8,
+    )
+    counts = np.bincount(out.loc[out["label"] == 0, "item"], minlength=n_items)
+    assert counts.sum() == n_pos
+    p = weights / weights.sum() if sampler == "popular" else np.full(n_items, 1 / n_items)
+    assert stats.chisquare(counts, p * n_pos).pvalue > 1e-4

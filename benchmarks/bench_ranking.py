@@ -186,16 +186,27 @@ def render(result: dict[str, Any]) -> str:
         + ", ".join(f"{name} {rows:,} rows" for name, rows in meta["sizes"].items())
         + ".",
         "",
-        "| method | wall time (s) | of which sampling (s) | peak memory (MiB) | rows out |",
+        "| method | wall time (s), median (range) | of which sampling (s) | peak memory (MiB) "
+        "| rows out |",
         "|---|---:|---:|---:|---:|",
     ]
     for key, row in result["methods"].items():
         sample = row.get("sample")
+        runs = row.get("runs", [])
+        spread = f" ({min(runs):.0f}-{max(runs):.0f})" if len(runs) > 1 else ""
         lines.append(
-            f"| {METHODS[key]} | {row['seconds']:.1f} | "
+            f"| {METHODS[key]} | {row['seconds']:.1f}{spread} | "
             f"{'' if sample is None else f'{sample:.1f}'} | {row['peak_rss'] / MIB:,.0f} | "
             f"{row['rows']:,} |"
         )
+    lows = [meta["load"]] + [
+        row["load"] for row in result["methods"].values() if row.get("load") is not None
+    ]
+    lines += [
+        "",
+        f"The machine was shared: the 1-minute load average ranged {min(x[0] for x in lows)}-"
+        f"{max(x[1] for x in lows)} during these runs (2 cores), so times vary between runs.",
+    ]
     if "sample_build" in result["methods"] and "build_given" in result["methods"]:
         a, b = result["methods"]["sample_build"], result["methods"]["build_given"]
         lines += [
@@ -251,6 +262,7 @@ def main(argv: list[str] | None = None) -> int:
     directory = ensure_data(args.positives, args.negatives)
     print(f"data ready in {time.perf_counter() - t0:.1f}s: {directory}", flush=True)
     runs: dict[str, list[dict[str, Any]]] = {m: [] for m in chosen}
+    loads = [os.getloadavg()[0]]
     for _ in range(args.repeat):
         for method in chosen:  # round robin
             report = _spawn(method, directory, args.negatives, args.timeout)
@@ -263,6 +275,7 @@ def main(argv: list[str] | None = None) -> int:
                 flush=True,
             )
             runs[method].append(report)
+            loads.append(os.getloadavg()[0])
 
     summary: dict[str, Any] = {}
     for method, reports in runs.items():
@@ -271,6 +284,7 @@ def main(argv: list[str] | None = None) -> int:
             "peak_rss": statistics.median(r["peak_rss"] for r in reports),
             "rows": reports[0]["rows"],
             "checksum": reports[0]["checksum"],
+            "runs": [r["seconds"] for r in reports],
         }
         if "sample" in reports[0]["phases"]:
             summary[method]["sample"] = statistics.median(r["phases"]["sample"] for r in reports)
@@ -295,6 +309,7 @@ def main(argv: list[str] | None = None) -> int:
             "nproc": len(os.sched_getaffinity(0)),
             "ram_gib": round(psutil.virtual_memory().total / 1024**3, 1),
             "duckdb": duckdb.__version__,
+            "load": [round(min(loads), 1), round(max(loads), 1)],
         },
         "methods": summary,
     }
@@ -305,6 +320,9 @@ def main(argv: list[str] | None = None) -> int:
             print(f"{path}: other sizes, not merged", file=sys.stderr)
             return 1
         merged = {**earlier["methods"], **summary}
+        for key in earlier["methods"]:
+            if key not in summary:
+                merged[key] = {**earlier["methods"][key], "load": earlier["meta"].get("load")}
         result["methods"] = {m: merged[m] for m in METHODS if m in merged}
         result["meta"]["merged"] = [*result["meta"].get("merged", []), earlier["meta"]["date"]]
     text = render(result)

@@ -13,7 +13,6 @@ import platform
 import shutil
 import sys
 import tempfile
-import threading
 import time
 from pathlib import Path
 from typing import Any
@@ -45,18 +44,16 @@ def _duckdb_arrow(spec: Any, data: dict[str, str]) -> Any:
     return aj.build(spec, data=data).to_arrow()
 
 
-def _spark_arrow(spec: Any, data: dict[str, str], spark: Any, asof: str) -> Any:
+def _spark_arrow(spec: Any, data: dict[str, str], spark: Any) -> Any:
     import asof_join as aj
-    from asof_join.engines.spark import SparkEngine
 
-    return aj.build(spec, data=data, engine=SparkEngine(spark, asof=asof)).to_arrow()
+    return aj.build(spec, data=data, engine="spark", spark=spark).to_arrow()
 
 
 def _spark_parquet(spec: Any, data: dict[str, str], spark: Any, out: Path) -> None:
     import asof_join as aj
-    from asof_join.engines.spark import SparkEngine
 
-    aj.build(spec, data=data, engine=SparkEngine(spark)).write_parquet(out)
+    aj.build(spec, data=data, engine="spark", spark=spark).write_parquet(out)
 
 
 def _same(a: Any, b: Any) -> bool:
@@ -118,7 +115,7 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
                 t, reference = _timed(_duckdb_arrow, spec, data)
                 duck_times.append(t)
             for _ in range(args.repeat):
-                t, got = _timed(_spark_arrow, spec, data, spark, "window")
+                t, got = _timed(_spark_arrow, spec, data, spark)
                 spark_times.append(t)
             for i in range(args.repeat):
                 out = work / f"{scenario}_{i}"
@@ -135,8 +132,6 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
                     reference.replace_schema_metadata(None), got.replace_schema_metadata(None)
                 )
             )
-            if args.native and scenario == "one":
-                row["spark_native_to_arrow_s"] = _native(spec, data, spark, args.native_timeout)
             results["scenarios"][scenario] = row
             print(json.dumps({scenario: row}), file=sys.stderr)
     finally:
@@ -144,19 +139,6 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
         spark.stop()
     results["load_avg_end"] = os.getloadavg()[0]
     return results
-
-
-def _native(spec: Any, data: dict[str, str], spark: Any, timeout: float) -> Any:
-    """asof='native' (DataFrame._joinAsOf), cancelled after `timeout` seconds."""
-    timer = threading.Timer(timeout, spark.sparkContext.cancelAllJobs)
-    timer.start()
-    try:
-        t, _ = _timed(_spark_arrow, spec, data, spark, "native")
-        return round(t, 2)
-    except Exception:  # cancelled
-        return f"> {timeout:.0f} (cancelled)"
-    finally:
-        timer.cancel()
 
 
 def markdown(results: dict[str, Any]) -> str:
@@ -177,10 +159,6 @@ def markdown(results: dict[str, Any]) -> str:
             f"{best(row['spark_to_arrow_s']):.1f} | {best(row['spark_write_parquet_s']):.1f} | "
             f"{'yes' if row['same_values'] else 'NO'} |"
         )
-    native = results["scenarios"].get("one", {}).get("spark_native_to_arrow_s")
-    if native is not None:
-        shown = native if isinstance(native, str) else f"{native:.1f}"
-        lines += ["", f'One table with `asof="native"` (`DataFrame._joinAsOf`): {shown} s.']
     return "\n".join(lines)
 
 
@@ -195,8 +173,6 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--master", default="local[2]")
     parser.add_argument("--driver-memory", default="4g")
     parser.add_argument("--partitions", type=int, default=8, help="spark.sql.shuffle.partitions")
-    parser.add_argument("--native", action="store_true", help="also time asof='native' (one)")
-    parser.add_argument("--native-timeout", type=float, default=600.0)
     parser.add_argument("--out", type=Path, default=None, help="write the results JSON here")
     args = parser.parse_args(argv)
     args.rows = args.rows or args.labels

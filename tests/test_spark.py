@@ -29,10 +29,10 @@ PER_CONFIG = int(os.environ.get("ASOF_JOIN_SPARK_PER_CONFIG", "10"))
 NURSERY = aj.load_spec(Path(__file__).parent / "fixtures" / "specs" / "nursery.yaml")
 
 
-def _spark_engine(spark: Any, asof: str = "window") -> Any:
+def _spark_engine(spark: Any) -> Any:
     from asof_join.engines.spark import SparkEngine
 
-    return SparkEngine(spark, asof=asof)
+    return SparkEngine(spark)
 
 
 def _batches(seed: int, configs: int, per_config: int, **options: Any) -> Iterator[Any]:
@@ -51,20 +51,16 @@ def _batches(seed: int, configs: int, per_config: int, **options: Any) -> Iterat
         yield recipe, union, bool(rng.integers(0, 2)), cases
 
 
-def _same_on_both(
-    spark: Any, recipe: CaseRecipe, data: dict[str, Any], provenance: bool, asof: str = "window"
-) -> None:
+def _same_on_both(spark: Any, recipe: CaseRecipe, data: dict[str, Any], provenance: bool) -> None:
     spec = build_spec(recipe)
     try:
         expected = aj.build(spec, data=data, provenance=provenance).to_pandas()
     except aj.AsofJoinError as err:
         with pytest.raises(type(err), match=re.escape(str(err))):
-            aj.build(spec, data=data, provenance=provenance, engine=_spark_engine(spark, asof))
+            aj.build(spec, data=data, provenance=provenance, engine=_spark_engine(spark))
         return
-    train = aj.build(spec, data=data, provenance=provenance, engine=_spark_engine(spark, asof))
-    assert_frames_match(
-        train.to_pandas(), expected, context=f"provenance={provenance}, asof={asof}\n{recipe}"
-    )
+    train = aj.build(spec, data=data, provenance=provenance, engine=_spark_engine(spark))
+    assert_frames_match(train.to_pandas(), expected, context=f"provenance={provenance}\n{recipe}")
 
 
 @pytest.mark.parametrize(
@@ -83,12 +79,6 @@ def test_generated_cases_equal_duckdb(spark: Any, seed: int, options: dict[str, 
         _same_on_both(spark, recipe, union, provenance)
         checked += cases
     assert checked >= CONFIGS * PER_CONFIG // 2
-
-
-def test_native_asof_join_equals_duckdb(spark: Any) -> None:
-    """Spark's own DataFrame._joinAsOf on the tie-free timeline gives the same answers."""
-    for recipe, union, provenance, _ in _batches(4, max(CONFIGS // 3, 2), PER_CONFIG):
-        _same_on_both(spark, recipe, union, provenance, asof="native")
 
 
 def test_max_by_keeps_a_null_value_on_the_max_row(spark: Any) -> None:

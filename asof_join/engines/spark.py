@@ -16,7 +16,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from ..errors import InputError, NullTimeError, UnreadableInputError, UnsupportedByEngineError
-from ..plan import LatestLookup, Plan
+from ..plan import Plan
 from .render import SqlRenderer
 from .sql import Params, literal_backslash, quote_ident_backtick
 
@@ -124,36 +124,22 @@ class SparkRenderer(SqlRenderer):
         return f"explode(sequence({start}, {stop} - 1))"
 
 
-class _NativeAsofRenderer(SparkRenderer):
-    """Latest lookups read by ``DataFrame._joinAsOf`` views the engine creates before the run."""
-
-    def __init__(self, plan: Plan, sources: dict[str, str], prefix: str) -> None:
-        super().__init__(plan, sources)
-        self.prefix = prefix
-        #: (lookup, index of its timeline CTE, view name) per latest lookup
-        self.native: list[tuple[LatestLookup, int, str]] = []
-
-    def latest_by_window(self, lookup: LatestLookup, line: str) -> str:
-        view = f"{self.prefix}_asof{lookup.step}"
-        self.native.append((lookup, len(self.ctes) - 1, view))
-        return self.q(view)
-
-
 class SparkEngine:
     """Runs plans on a SparkSession: the same plan and results as the DuckDB engine.
+
+    Latest features use the sort-and-window formulation (Spark SQL has no ASOF JOIN). PySpark's
+    internal ``DataFrame._joinAsOf`` is not used: Spark rewrites it into a correlated subquery
+    (``min_by`` over ``t - time`` per label), which fails analysis on views over Parquet files
+    and did not finish in 400 s where the window formulation took 16 s (100k labels, local[2]).
 
     Args:
         spark: the session (default: the active one). The engine sets its
             ``spark.sql.session.timeZone`` to UTC: naive times are read as UTC wall-clock times.
-        asof: ``"window"`` (default) reads latest features with the sort-and-window
-            formulation in one SQL statement; ``"native"`` uses Spark's internal
-            ``DataFrame._joinAsOf`` on the same tie-free timeline (Spark rewrites it into a
-            join on key and time bound, slower at scale; kept for comparison).
     """
 
     name = "spark"
 
-    def __init__(self, spark: SparkSession | None = None, *, asof: str = "window") -> None:
+    def __init__(self, spark: SparkSession | None = None) -> None:
         try:
             from pyspark.sql import SparkSession
         except ImportError:  # pragma: no cover - depends on the environment
@@ -164,14 +150,7 @@ class SparkEngine:
         if spark is None:
             msg = "engine='spark' needs a session: build(..., engine='spark', spark=SparkSession)"
             raise UnsupportedByEngineError(msg)
-        if asof not in ("window", "native"):
-            msg = f"asof={asof!r} is not a Spark as-of method; choose 'window' or 'native'"
-            raise UnsupportedByEngineError(msg)
-        if asof == "native" and not _has_native_asof(spark):
-            msg = "this Spark has no DataFrame._joinAsOf; use asof='window'"
-            raise UnsupportedByEngineError(msg)
         self.spark = spark
-        self.asof = asof
         spark.conf.set("spark.sql.session.timeZone", "UTC")
         self.prefix = f"aj{next(_ENGINE_IDS)}"
         self.sources: dict[str, str] = {}
@@ -261,9 +240,15 @@ class SparkEngine:
             raise
         except Exception as exc:
             first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+            fix = "check the path and the file"
+            if "NANOS" in first:
+                fix = (
+                    "Spark reads no nanosecond timestamps: write the file with microseconds "
+                    "(pyarrow: coerce_timestamps='us')"
+                )
             msg = (
                 f"table {name!r}: cannot read {path!r} as {'CSV' if is_csv else 'Parquet'} "
-                f"with Spark: {first}; check the path and the file"
+                f"with Spark: {first}; {fix}"
             )
             err = UnreadableInputError(msg)
             err.table, err.value = name, path
@@ -306,7 +291,8 @@ class SparkEngine:
         _require_free(name, frame.columns)
         for field in frame.schema.fields:
             if isinstance(field.dataType, TimestampType):
-                frame = frame.withColumn(field.name, F.col(field.name).cast("timestamp_ntz"))
+                column = F.col(quote_ident_backtick(field.name))
+                frame = frame.withColumn(field.name, column.cast("timestamp_ntz"))
         files = sorted(
             (r[0] for r in frame.select("_metadata.file_path").distinct().collect()),
             key=_path_order,
@@ -379,66 +365,15 @@ class SparkEngine:
 
     # -- rendering and running -------------------------------------------------------------
 
-    def _renderer(self, plan: Plan) -> SparkRenderer:
-        if self.asof == "native":
-            return _NativeAsofRenderer(plan, self.sources, self.prefix)
-        return SparkRenderer(plan, self.sources)
-
     def render(self, plan: Plan) -> tuple[str, dict[str, object]]:
-        renderer = self._renderer(plan)
+        renderer = SparkRenderer(plan, self.sources)
         sql = renderer.render()
         return sql, dict(renderer.params.values)
 
     def run(self, plan: Plan) -> SparkResult:
-        renderer = self._renderer(plan)
-        sql = renderer.render()
-        params = dict(renderer.params.values)
-        notes: list[str] = []
-        if isinstance(renderer, _NativeAsofRenderer):
-            notes = self._native_views(renderer, params)
-        frame = self.spark.sql(sql, args=params or None)
-        return SparkResult(self, frame, sql, params, plan, notes)
-
-    def _native_views(self, r: _NativeAsofRenderer, params: dict[str, object]) -> list[str]:
-        """Latest lookups through ``DataFrame._joinAsOf``: one temp view per lookup."""
-        n = r.n
-        notes = []
-        for lookup, last_cte, view in r.native:
-            ctes = r.ctes[: last_cte + 1]
-            with_sql = ",\n".join(f"{r.q(name)} AS (\n    {body}\n)" for name, body in ctes)
-            line_name = r.q(ctes[-1][0])
-            label_keys = ", ".join(
-                f"{r.q(c)} AS {n('lk', i)}" for i, c in enumerate(lookup.label_keys)
-            )
-            labels = self._sql(
-                f"WITH {with_sql}\nSELECT {n.row}, {n.t}, {label_keys} FROM {n.labels}", params
-            )
-            line = self._sql(f"WITH {with_sql}\nSELECT * FROM {line_name}", params)
-            on = [
-                labels[f"__aj_lk{i}"] == line[f"__aj_k{i}"] for i in range(len(lookup.label_keys))
-            ]
-            joined = labels._joinAsOf(
-                line,
-                leftAsOfColumn=labels["__aj_t"],
-                rightAsOfColumn=line["__aj_at"],
-                on=on,
-                how="left",
-                allowExactMatches=lookup.inclusive,  # strict: known < t
-                direction="backward",
-            )
-            keep = ["__aj_s", "__aj_at", *(f"__aj_v{i}" for i in range(len(lookup.values)))]
-            joined.select(
-                labels["__aj_row"], *(line[c].alias(c) for c in keep)
-            ).createOrReplaceTempView(view)
-            notes.append(
-                f"-- {r.q(view)}: {n.labels} as-of joined to {line_name} by "
-                f"DataFrame._joinAsOf (allowExactMatches={lookup.inclusive})"
-            )
-        return notes
-
-    def _sql(self, sql: str, params: dict[str, object]) -> DataFrame:
-        used = {k: v for k, v in params.items() if f":{k}" in sql}
-        return self.spark.sql(sql, args=used or None)
+        sql, params = self.render(plan)
+        frame = self.spark.sql(sql, args=params or None)  # analyzed now: views resolved
+        return SparkResult(self, frame, sql, params, plan)
 
 
 class SparkResult:
@@ -451,14 +386,12 @@ class SparkResult:
         sql: str,
         params: dict[str, object],
         plan: Plan,
-        notes: list[str],
     ) -> None:
         self.engine = engine
         self.frame = frame
         self.sql = sql
         self.params = params
         self.plan = plan
-        self.notes = notes
         self._table: pa.Table | None = None
 
     def readable_sql(self) -> str:
@@ -466,10 +399,10 @@ class SparkResult:
         params = Params(dict(self.params), marker=":", quote=literal_backslash)
         head = ["SET spark.sql.session.timeZone = UTC;"]
         head += [self.engine.definitions[name] for name in self.plan.tables]
-        head += self.notes
         return "\n".join(head) + "\n" + params.inline(self.sql) + ";"
 
     def to_spark(self) -> DataFrame:
+        """The DataFrame (sorted by label position); times in it are Spark's microseconds."""
         return self.frame
 
     def arrow(self) -> pa.Table:
@@ -533,16 +466,11 @@ def _collect(frame: DataFrame) -> pa.Table:
     """A DataFrame as an Arrow table, in its order."""
     if hasattr(frame, "toArrow"):
         return frame.toArrow()
-    batches = frame._collect_as_arrow()  # pragma: no cover - Spark 3.5
+    # Spark 3.5 has no toArrow; mypy reads `frame._x` as a column lookup
+    batches = frame._collect_as_arrow()  # type: ignore[operator]  # pragma: no cover
     if batches:  # pragma: no cover - Spark 3.5
         return pa.Table.from_batches(batches)
     return pa.Table.from_pandas(frame.toPandas(), preserve_index=False)  # pragma: no cover
-
-
-def _has_native_asof(spark: SparkSession) -> bool:
-    """Capability check: the installed PySpark's DataFrame has ``_joinAsOf``."""
-    frame = spark.range(0)
-    return callable(getattr(frame, "_joinAsOf", None))
 
 
 def _spark_major(spark: SparkSession) -> int:

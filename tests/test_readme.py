@@ -18,7 +18,7 @@ def test_quickstart_runs_and_prints_the_documented_frame() -> None:
     code = _python_blocks()[0]
     out = io.StringIO()
     with contextlib.redirect_stdout(out):
-        exec(compile(code, str(README), "exec"), {})  # noqa: S102 - running our own README
+        exec(compile(code, str(README), "exec"), {})
     printed = out.getvalue().splitlines()
     documented = [
         line[2:] for line in code.splitlines() if line.startswith("# ") or line == "#"

@@ -572,7 +572,8 @@ def test_killed_runs_end_with_the_files_of_an_uninterrupted_run(
         out = tmp_path / f"run{trial}"
         finished = False
         for _kill in range(2):  # up to two kills at random moments, then a run to the end
-            proc = start_runner(nursery_files, out, sleep=0.01)
+            # 35 partitions x 2 pauses x 0.05 s keep a run longer than any kill delay below
+            proc = start_runner(nursery_files, out, sleep=0.05)
             try:
                 proc.wait(timeout=rng.uniform(0.8, 2.5))
             except subprocess.TimeoutExpired:

@@ -71,6 +71,21 @@ def _key_family(typ: pa.DataType) -> str:
     return str(typ)
 
 
+def _time_column(schema: pa.Schema, table: str, column: str, role: str) -> TimeKind:
+    """The kind of a declared time column; a clear error when missing or not a time."""
+    typ = _require(schema, table, column, role, f"Fix {role}= or the data.")
+    kind = _time_kind(typ)
+    if kind is None:
+        msg = (
+            f"table {table!r} column {column!r} (its {role}) has type {typ}, not a timestamp "
+            f"or date; convert it (e.g. pandas.to_datetime) or point {role}= at a timestamp"
+        )
+        err = TimeTypeError(msg)
+        err.table, err.column = table, column
+        raise err
+    return kind
+
+
 def _require(schema: pa.Schema, table: str, column: str, role: str, fix: str) -> pa.DataType:
     if column not in schema.names:
         raise ColumnNotFoundError.missing(table, column, role, schema.names, fix)
@@ -85,28 +100,13 @@ def check_inputs(
     kinds: dict[str, tuple[TimeKind, TimeKind | None]] = {}
     for name, table in tables.items():
         schema = schemas[name]
-        vt = _require(schema, name, table.time, "time", "Fix time= or the data.")
-        vk = _time_kind(vt)
-        if vk is None:
-            msg = (
-                f"table {name!r} column {table.time!r} (its time) has type {vt}, not a timestamp "
-                "or date; convert it (e.g. pandas.to_datetime) or point time= at a timestamp"
-            )
-            err = TimeTypeError(msg)
-            err.table, err.column = name, table.time
-            raise err
-        kk: TimeKind | None = None
-        if table.known_at is not None:
-            kt = _require(schema, name, table.known_at, "known_at", "Fix known_at= or the data.")
-            kk = _time_kind(kt)
-            if kk is None:
-                msg = (
-                    f"table {name!r} column {table.known_at!r} (its known_at) has type {kt}, not "
-                    "a timestamp or date; convert it or point known_at= at a timestamp"
-                )
-                err = TimeTypeError(msg)
-                err.table, err.column = name, table.known_at
-                raise err
+        vk = _time_column(schema, name, table.time, "time")
+        kk = (
+            None
+            if table.known_at is None
+            else _time_column(schema, name, table.known_at, "known_at")
+        )
+        kinds[name] = (vk, kk)
         for ref in table.entities:
             for col in ref.columns:
                 _require(schema, name, col, f"key of entity {ref.entity!r}", "Fix entities=.")
@@ -163,15 +163,6 @@ def check_inputs(
             f"{spec.labels.name!r}; set name= or prefix= on that feature"
         )
         raise SpecError(msg)
-
-    for name, (vk, kk) in (
-        (n, (_time_kind(schemas[n].field(t.time).type), None)) for n, t in tables.items()
-    ):
-        assert vk is not None
-        kinds[name] = (vk, kk)
-    for name, table in tables.items():
-        if table.known_at is not None:
-            kinds[name] = (kinds[name][0], _time_kind(schemas[name].field(table.known_at).type))
 
     aware_cols = [
         (n, c)

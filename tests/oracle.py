@@ -186,7 +186,7 @@ def oracle_build(
 
     Feature columns are ``object`` columns of plain Python values (None for null); timestamps
     are naive when every input is naive, else UTC instants. ``spec`` is any object with the
-    attributes of ``asof_join.TrainingSetSpec`` (see API_DRAFT.md).
+    attributes of ``asof_join.TrainingSetSpec``.
     """
     aware = _spec_is_aware(spec, data)
     timezone = getattr(spec, "timezone", None)

@@ -105,7 +105,7 @@ def test_thousands_of_seeded_latest_cases() -> None:
 
 
 def test_nanosecond_times_are_truncated_to_microseconds() -> None:
-    # API_DRAFT: times compare at microsecond precision, nanosecond inputs truncated. The label
+    # README: times compare at microsecond precision, nanosecond inputs truncated. The label
     # at 00:00:00.000000500 truncates to 00:00:00, the row's own instant, so strict visibility
     # hides the row (rounding to .000001 would show it).
     user = aj.Entity("user", keys=["user_id"])

@@ -1,8 +1,8 @@
 """Minimal stand-ins for the spec classes, so the oracle can be tested without the engine.
 
-They mirror the constructor signatures and attributes of the public spec classes and nothing more: no
-validation, no serialization. Tests that exercise the oracle alone use them; tests that compare
-the engine with the oracle use the real ``asof_join`` classes.
+They mirror the constructor signatures and attributes of the public spec classes and nothing
+more: no validation, no serialization. Tests that exercise the oracle alone use them; tests
+that compare the engine with the oracle use the real ``asof_join`` classes.
 """
 
 from __future__ import annotations

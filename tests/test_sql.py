@@ -103,3 +103,21 @@ def test_golden_sql(spec_file: Path) -> None:
     if os.environ.get("ASOF_JOIN_UPDATE_GOLDEN") == "1" or not golden.exists():
         golden.write_text(sql, encoding="utf-8")
     assert sql == golden.read_text(encoding="utf-8"), f"golden SQL changed: {golden}"
+
+
+def test_unknown_plan_step_is_refused_not_guessed() -> None:
+    """A renderer without a method for a step raises UnsupportedByEngineError."""
+    from asof_join.engines.render import SqlRenderer
+
+    class NoTrailing(SqlRenderer):
+        render_TrailingLookup = None  # type: ignore[assignment]  # the step is missing
+
+    who = aj.Entity("c", keys=["k"])
+    labels = aj.EventTable("l", time="t", entities=[who])
+    spec = aj.TrainingSetSpec(
+        labels=labels, features=[aj.Trailing(labels, None, "count", over="1d")]
+    )
+    frame = pd.DataFrame({"k": [1], "t": pd.to_datetime(["2024-01-02"])})
+    ts = aj.build(spec, data={"l": frame})
+    with pytest.raises(aj.UnsupportedByEngineError, match="TrailingLookup"):
+        NoTrailing(ts.plan, ts.engine.sources).render()

@@ -189,9 +189,18 @@ class SqlRenderer:
         joins: list[str] = []
         exprs: dict[str, str] = {}
         for lookup in self.plan.lookups:
-            method: Callable[[Lookup, str], tuple[str, dict[tuple[str, int], str]]] = getattr(
-                self, f"render_{type(lookup).__name__}"
+            method: Callable[[Lookup, str], tuple[str, dict[tuple[str, int], str]]] | None = (
+                getattr(self, f"render_{type(lookup).__name__}", None)
             )
+            if method is None:  # a plan step this dialect cannot render: never guessed
+                from ..errors import UnsupportedByEngineError
+
+                msg = (
+                    f"{type(self).__name__} cannot render plan step {type(lookup).__name__} "
+                    f"(table {lookup.table!r}); use engine='duckdb' or add render_"
+                    f"{type(lookup).__name__} to the renderer"
+                )
+                raise UnsupportedByEngineError(msg)
             join, columns = method(lookup, "l")
             joins.append(join)
             for out in self.plan.outputs:

@@ -675,7 +675,12 @@ class _Auditor:
             self.notes.append(
                 f"data[{label_name!r}] was not read: the audited frame's rows are the labels"
             )
-        label_data = self.table.select(self.label_columns)
+        # only the label time and join keys go into the rebuild: the other label columns would
+        # be carried through it and materialized again for nothing
+        needed = [self.spec.labels.time]
+        for feat in self.spec.features:
+            needed += [c for c in self.spec.join_keys(feat)[0] if c not in needed]
+        label_data = self.table.select(needed)
         for name in feature_tables:
             # The label table read by a feature needs its own data: the audited frame may hold
             # a subset of it (one split), which would change trailing aggregates.

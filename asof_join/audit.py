@@ -56,7 +56,7 @@ from .errors import (
     UnknownTableError,
     UnreadableInputError,
 )
-from .plan import LatestLookup
+from .plan import LatestLookup, TimeKind, TimeRef
 from .spec import Latest, Trailing, TrainingSetSpec
 
 if TYPE_CHECKING:
@@ -443,9 +443,10 @@ def _read_path(path: str) -> pa.Table:
         err.value = path
         raise err
     is_csv = path.lower().endswith((".csv", ".tsv", ".txt", ".csv.gz", ".tsv.gz"))
-    con = duckdb.connect()
+    from .engines.duckdb import connect
+
+    con = connect()
     try:
-        con.execute("SET TimeZone = 'UTC'")
         rel = con.read_csv(path) if is_csv else con.read_parquet(path)
         table: pa.Table = rel.to_arrow_table()
     except duckdb.Error as exc:
@@ -517,7 +518,6 @@ class _Auditor:
         memory_limit: str | None,
         threads: int | None,
     ) -> None:
-        import duckdb
 
         self.spec = spec
         self.table = table
@@ -530,8 +530,9 @@ class _Auditor:
         self.max_examples = max_examples
         self.memory_limit = memory_limit
         self.threads = threads
-        self.con: duckdb.DuckDBPyConnection = duckdb.connect()
-        self.con.execute("SET TimeZone = 'UTC'")
+        from .engines.duckdb import connect
+
+        self.con: duckdb.DuckDBPyConnection = connect()
         self.findings: list[Finding] = []
         self.notes: list[str] = []
         self.outputs: list[_Output] = []
@@ -771,8 +772,8 @@ class _Auditor:
         time_cols = [self.spec.labels.time] + [
             f"{o.name}{s}" for o in self.outputs if o.provenance for s in ("__time", "__known_at")
         ]
-        aware = any(self.types[c] == _TZ for c in time_cols)
-        if aware and self.types[self.spec.labels.time] != _TZ:
+        aware = any(self.types[c] in _AWARE for c in time_cols)
+        if aware and self.types[self.spec.labels.time] not in _AWARE:
             self.label_zone = self.spec.timezone or "UTC"
             if self.spec.timezone is None:
                 self.notes.append(
@@ -784,7 +785,7 @@ class _Auditor:
 
     def _us(self, column: str, types: Mapping[str, str], p: Params, zone: str | None) -> str:
         """Epoch microseconds of a time column (aware: the instant; naive: read in zone)."""
-        return _micros_sql(q(column), types[column], column, p, zone)
+        return _micros_sql(types[column], column, p, zone)
 
     def _t(self, p: Params) -> str:
         return self._us(self.spec.labels.time, self.types, p, self.label_zone)
@@ -1557,7 +1558,7 @@ class _Auditor:
 
 _POS = "__aj_pos"
 _AUD = "__aj_aud"
-_TZ = "TIMESTAMP WITH TIME ZONE"
+_AWARE = ("TIMESTAMP WITH TIME ZONE", "TIMESTAMPTZ_NS")
 
 
 def _rows(n: int) -> str:
@@ -1630,12 +1631,19 @@ def _canon_sql(x: str, own: str, other: str) -> str:
     return f"CAST({x} AS VARCHAR)"
 
 
-def _micros_sql(col: str, duck_type: str, name: str, p: Params, zone: str | None) -> str:
-    """Epoch microseconds of a time column: an aware value is its instant; a naive one (or a
-    date, at midnight) is read in ``zone`` when given; units are brought to microseconds."""
-    if duck_type == _TZ:
-        return f"epoch_us({col})"
-    if not (duck_type.startswith("TIMESTAMP") or duck_type == "DATE"):
+def _micros_sql(duck_type: str, name: str, p: Params, zone: str | None) -> str:
+    """Epoch microseconds of a time column, normalized exactly as build() does (the engine's
+    renderer): an aware value is its instant; a naive one (or a date, at midnight) is read in
+    ``zone`` when given; nanoseconds are floored."""
+    from .engines.duckdb import DuckDBRenderer
+
+    if duck_type in _AWARE:
+        kind = TimeKind.AWARE
+    elif duck_type == "DATE":
+        kind = TimeKind.DATE
+    elif duck_type.startswith("TIMESTAMP"):
+        kind = TimeKind.NAIVE
+    else:
         msg = (
             f"column {name!r} has type {duck_type}, not a timestamp or date; the audit compares "
             "it as a time: convert it (e.g. pandas.to_datetime)"
@@ -1643,10 +1651,10 @@ def _micros_sql(col: str, duck_type: str, name: str, p: Params, zone: str | None
         err = TimeTypeError(msg)
         err.column = name
         raise err
-    ts = f"CAST({col} AS TIMESTAMP)"
-    if zone is not None:
-        return f"epoch_us(timezone({p.add(zone)}, {ts}))"
-    return f"epoch_us({ts})"
+    ref = TimeRef(
+        name, kind, None if kind == TimeKind.AWARE else zone, nanos=duck_type.endswith("_NS")
+    )
+    return f"epoch_us({DuckDBRenderer.for_expressions(p).time_expr(ref)})"
 
 
 def _bin_sql(age: str) -> str:

@@ -704,24 +704,6 @@ class _Folder:
         _fsync_dir(self.out)
 
 
-def _connect() -> duckdb.DuckDBPyConnection:
-    """A DuckDB connection whose ASOF joins stay ASOF joins.
-
-    DuckDB plans an ASOF join as a nested loop when it estimates at most
-    ``asof_loop_join_threshold`` (default 64) rows on its left side. A CTE that several lookups
-    share is materialized and its size is not estimated, so build() with a latest feature and
-    any other lookup ran as a quadratic loop: 300 s instead of 5 s on 900k spine rows. See
-    https://duckdb.org/docs/stable/configuration/overview (asof_loop_join_threshold).
-    """
-    import duckdb
-
-    con = duckdb.connect()
-    # TODO(backfill): drop once DuckDBEngine sets this itself (needs DuckDB >= 1.3)
-    with contextlib.suppress(duckdb.Error):
-        con.execute("SET asof_loop_join_threshold = 0")
-    return con
-
-
 def _entry(name: str, t: dt.datetime, rows: int) -> dict[str, Any]:
     return {"as_of": _iso(t), "path": f"{name}/{PART}", "rows": int(rows)}
 
@@ -762,8 +744,9 @@ class _Session:
         self.memory_limit = memory_limit
         self.temp_dir = temp_dir
         self.threads = threads
-        self.con: duckdb.DuckDBPyConnection = _connect()
-        self.con.execute("SET TimeZone = 'UTC'")
+        from .engines.duckdb import connect
+
+        self.con: duckdb.DuckDBPyConnection = connect()
         self.population: dict[str, Any] | None = None
         self._population_table: str | None = None
         self._engine: DuckDBEngine | None = None
@@ -1006,7 +989,9 @@ class _Session:
                     {"ids": ids},
                 )
                 # a fresh connection per chunk: bound names are registered anew each build
-                con = _connect()
+                from .engines.duckdb import connect
+
+                con = connect()
                 train = build(
                     self.target.spec,
                     data={**self.inputs, self.target.label: str(spine)},

@@ -61,7 +61,8 @@ def _time_kind(typ: pa.DataType) -> TimeKind | None:
     return None
 
 
-def _key_family(typ: pa.DataType) -> str:
+def key_family(typ: pa.DataType) -> str:
+    """The family keys compare in: numbers (any width), strings, or the type itself."""
     if pa.types.is_dictionary(typ):
         typ = typ.value_type
     if pa.types.is_integer(typ) or pa.types.is_floating(typ) or pa.types.is_decimal(typ):
@@ -138,7 +139,7 @@ def check_inputs(
                 "Map the entity's columns on the label table: entities={'<entity>': [...]}.",
             )
             ttype = schema.field(tcol).type
-            if _key_family(ltype) != _key_family(ttype):
+            if key_family(ltype) != key_family(ttype):
                 msg = (
                     f"key type mismatch: label table {spec.labels.name!r} column {lcol!r} is "
                     f"{ltype} but table {name!r} column {tcol!r} is {ttype}; cast one side so "

@@ -23,6 +23,7 @@ from ._frames import (
     to_arrow,
 )
 from .errors import InputError, KeyTypeMismatchError, SpecError
+from .inputs import key_family
 
 if TYPE_CHECKING:
     from collections.abc import Sequence
@@ -207,13 +208,10 @@ def sample_negatives(
         _same_key_family(("interactions", log_item), ("items", i_item), item)
         _same_key_family(("interactions", log_user), ("positives", p_user), user)
 
-    import duckdb
+    from .engines.duckdb import connect
 
-    con = duckdb.connect()
+    con = connect(threads=threads)
     try:
-        con.execute("SET enable_progress_bar = false").fetchall()
-        if threads is not None:
-            con.execute(f"SET threads = {int(threads)}").fetchall()
         n_pos = pos_arrow.num_rows
         tables = {
             "aj_pos": pa.table(
@@ -310,18 +308,8 @@ def _no_nulls(array: pa.Array, what: str, column: str, role: str) -> None:
         raise err
 
 
-def _family(typ: pa.DataType) -> str:
-    if pa.types.is_dictionary(typ):
-        typ = typ.value_type
-    if pa.types.is_integer(typ):
-        return "integer"
-    if pa.types.is_string(typ) or pa.types.is_large_string(typ) or pa.types.is_string_view(typ):
-        return "string"
-    return str(typ)
-
-
 def _same_key_family(a: tuple[str, pa.Array], b: tuple[str, pa.Array], column: str) -> None:
-    if _family(a[1].type) != _family(b[1].type):
+    if key_family(a[1].type) != key_family(b[1].type):
         msg = (
             f"key type mismatch: {a[0]} column {column!r} is {a[1].type} but {b[0]} column "
             f"{column!r} is {b[1].type}; cast one side so both are integers or both strings"

@@ -691,3 +691,27 @@ def test_cli_audit_could_not_run_exits_2(
     bad_spec.write_text("version: 1\nlabels: nope\n")
     code, _, err = run(capsys, "audit", str(project / "clean.parquet"), "--spec", str(bad_spec))
     assert code == 2 and err.count("\n") == 1
+
+
+def test_nanosecond_times_are_read_like_build_reads_them() -> None:
+    """A label at .000000500 ns sees nothing stamped at its floored microsecond (build()'s rule);
+    the audit normalizes times with the same renderer, so the built set is clean both ways."""
+    user = aj.Entity("user", keys=["user_id"])
+    spec = aj.TrainingSetSpec(
+        labels=aj.EventTable("labels", time="t", entities=[user]),
+        features=[aj.Latest(aj.EventTable("rows", time="s", entities=[user]), ["v"])],
+    )
+    t = pd.Series([pd.Timestamp("2024-01-15 00:00:00.000000500")], dtype="datetime64[ns]")
+    labels = pd.DataFrame({"user_id": [1], "t": t})
+    s = pd.Series([pd.Timestamp("2024-01-15")], dtype="datetime64[ns]")
+    rows = pd.DataFrame({"user_id": [1], "s": s, "v": [7]})
+    data = {"labels": labels, "rows": rows}
+    plain = aj.build(spec, data=data).to_pandas()
+    assert pd.isna(plain["v"].iloc[0])
+    assert aj.audit(plain, spec, data=data).ok
+    with_provenance = aj.build(spec, data=data, provenance=True).to_pandas()
+    assert aj.audit(with_provenance, spec).ok
+    # a set that took the row stamped at the label's own (floored) microsecond leaked it
+    leaked = with_provenance.assign(v=[7], v__time=s, v__known_at=s)
+    report = aj.audit(leaked, spec)
+    assert [f.rule.value for f in report.findings] == ["future_row"]

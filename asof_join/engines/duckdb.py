@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import glob
-import json
 import os
 from collections.abc import Mapping
 from pathlib import Path
@@ -46,6 +45,41 @@ _PARQUET = (".parquet", ".pq", ".parq")
 _CSV = (".csv", ".tsv", ".txt", ".csv.gz", ".tsv.gz")
 
 
+def connect(
+    *,
+    memory_limit: str | None = None,
+    temp_dir: str | os.PathLike[str] | None = None,
+    threads: int | None = None,
+    connection: duckdb.DuckDBPyConnection | None = None,
+) -> duckdb.DuckDBPyConnection:
+    """A DuckDB connection set up the way every part of asof_join needs it.
+
+    UTC session time zone, no progress bar, no extension downloads, and as-of joins that stay
+    sort-merge joins: a label relation shared by several lookups has no size estimate, and
+    DuckDB may then plan an as-of join as a nested loop (318 s instead of 5 s at 900k labels).
+    https://duckdb.org/docs/stable/configuration/overview (asof_loop_join_threshold)
+    """
+    con = connection if connection is not None else duckdb.connect()
+
+    def run(sql: str, params: dict[str, object] | None = None) -> list[tuple[Any, ...]]:
+        return con.execute(sql, params or {}).fetchall()
+
+    run("SET TimeZone = 'UTC'")
+    run("SET enable_progress_bar = false")
+    run("SET autoinstall_known_extensions = false")
+    run("SET autoload_known_extensions = false")
+    known = "SELECT count(*) FROM duckdb_settings() WHERE name = 'asof_loop_join_threshold'"
+    if run(known)[0][0]:  # older DuckDB versions do not have the setting
+        run("SET asof_loop_join_threshold = 0")
+    if memory_limit is not None:
+        run(f"SET memory_limit = {literal(str(memory_limit))}")
+    if temp_dir is not None:
+        run(f"SET temp_directory = {literal(str(temp_dir))}")
+    if threads is not None:
+        run(f"SET threads = {int(threads)}")
+    return con
+
+
 class DuckDBEngine:
     """Runs plans in one DuckDB connection (in-process; spills to temp_dir under memory_limit)."""
 
@@ -64,22 +98,9 @@ class DuckDBEngine:
             msg = f"asof={asof!r} is not a DuckDB as-of method; choose one of {sorted(_RENDERERS)}"
             raise SpecError(msg)
         self.renderer = _RENDERERS[asof]
-        self.con = connection if connection is not None else duckdb.connect()
-        self.fetch("SET TimeZone = 'UTC'")
-        self.fetch("SET enable_progress_bar = false")
-        # A label relation shared by several lookups has no size estimate, and DuckDB then may
-        # plan an as-of join as a nested loop (318 s instead of 5 s at 900k labels): always
-        # use the sort-merge as-of join.
-        # https://duckdb.org/docs/stable/configuration/overview (asof_loop_join_threshold)
-        self._set_if_known("asof_loop_join_threshold", "0")
-        self.fetch("SET autoinstall_known_extensions = false")
-        self.fetch("SET autoload_known_extensions = false")
-        if memory_limit is not None:
-            self.fetch(f"SET memory_limit = {literal(str(memory_limit))}")
-        if temp_dir is not None:
-            self.fetch(f"SET temp_directory = {literal(str(temp_dir))}")
-        if threads is not None:
-            self.fetch(f"SET threads = {int(threads)}")
+        self.con = connect(
+            memory_limit=memory_limit, temp_dir=temp_dir, threads=threads, connection=connection
+        )
         self.sources: dict[str, str] = {}
         self.arrow_schemas: dict[str, pa.Schema] = {}
         self._keep: list[object] = []
@@ -169,12 +190,6 @@ class DuckDBEngine:
             err = UnreadableInputError(msg)
             err.table, err.value = name, path
             raise err from None
-
-    def _set_if_known(self, name: str, value: str) -> None:
-        """Apply a setting that older DuckDB versions do not have."""
-        known = self.fetch("SELECT count(*) FROM duckdb_settings() WHERE name = $n", {"n": name})
-        if known[0][0]:
-            self.fetch(f"SET {name} = {int(value)}")
 
     def fetch(self, sql: str, params: dict[str, object] | None = None) -> list[tuple[Any, ...]]:
         """Run a statement to completion and return its rows."""
@@ -291,8 +306,3 @@ def _restore_label_types(table: pa.Table, label_schema: pa.Schema) -> pa.Table:
         return table
     names = table.schema.names
     return pa.Table.from_arrays(columns, names=names, metadata=table.schema.metadata)
-
-
-def metadata_json(value: Any) -> str:
-    """JSON text for Parquet key-value metadata."""
-    return json.dumps(value, sort_keys=True)

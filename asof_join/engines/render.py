@@ -55,6 +55,17 @@ class SqlRenderer:
         self.ctes: list[tuple[str, str]] = []
         self.n = Names(self.q)
 
+    @classmethod
+    def for_expressions(cls, params: Params) -> SqlRenderer:
+        """A renderer for single expressions outside any plan (e.g. the audit's time columns),
+        binding values into ``params``; its plan-level methods must not be called."""
+        renderer = cls.__new__(cls)
+        renderer.sources = {}
+        renderer.params = params
+        renderer.ctes = []
+        renderer.n = Names(renderer.q)
+        return renderer
+
     # -- hooks a dialect overrides --------------------------------------------------------
 
     def q(self, name: str) -> str:

@@ -81,14 +81,6 @@ def test_generated_cases_equal_duckdb(spark: Any, seed: int, options: dict[str, 
     assert checked >= CONFIGS * PER_CONFIG // 2
 
 
-def test_max_by_keeps_a_null_value_on_the_max_row(spark: Any) -> None:
-    """The premise of SparkRenderer.arg_max: the newest row's null is not skipped."""
-    rows = spark.sql(
-        "SELECT max_by(v, o) AS v FROM VALUES (1, 1), (CAST(NULL AS INT), 2) AS t(v, o)"
-    ).collect()
-    assert rows[0]["v"] is None
-
-
 @pytest.mark.parametrize("name", ['a"b', "a`b", "x; drop table y", "select", "with space", "plänt"])
 def test_backtick_quoting_round_trips(spark: Any, name: str) -> None:
     from asof_join.engines.sql import literal_backslash, quote_ident_backtick

@@ -9,11 +9,12 @@ from pathlib import Path
 from typing import Any
 
 import duckdb
+import numpy as np
 import pyarrow as pa
 
 from ..errors import InputError, NullTimeError, SpecError, UnreadableInputError
 from ..plan import Plan
-from .render import SqlRenderer
+from .render import POSITION, SqlRenderer
 from .sql import literal, quote_ident
 
 
@@ -102,8 +103,11 @@ class DuckDBEngine:
             memory_limit=memory_limit, temp_dir=temp_dir, threads=threads, connection=connection
         )
         self.sources: dict[str, str] = {}
+        # table name -> a view of the same rows plus POSITION (see _position)
+        self.positioned: dict[str, str] = {}
         self.arrow_schemas: dict[str, pa.Schema] = {}
         self._keep: list[object] = []
+        self._frames: dict[str, pa.Table] = {}  # in-memory inputs, as registered
 
     # -- binding ---------------------------------------------------------------------------
 
@@ -118,7 +122,34 @@ class DuckDBEngine:
             schema = rel.to_arrow_table().schema
             schemas[name] = schema
             self.arrow_schemas[name] = original if original is not None else schema
+            self._position(name, f"aj_pos_{i}", obj, schema)
         return schemas
+
+    def _position(self, name: str, view: str, obj: object, schema: pa.Schema) -> None:
+        """Register `view`: the table's rows with POSITION, their 0-based input position.
+
+        Numbering rows in the query (``row_number() OVER ()``) is a single-threaded pass that
+        costs about 0.5 s per 10M rows; a single Parquet file has the position for free
+        (``file_row_number``) and an in-memory frame takes a column. CSV files and multi-file
+        globs are numbered in the query.
+        """
+        if POSITION in schema.names or "file_row_number" in schema.names:
+            return
+        if isinstance(obj, (str, os.PathLike)):
+            path = os.fspath(obj)
+            if not path.lower().endswith(_PARQUET) or glob.has_magic(path):
+                return
+            rel = self.con.read_parquet(path)
+            rel.select(f"*, file_row_number AS {quote_ident(POSITION)}").create_view(view)
+        else:
+            table = self._frames.get(name)
+            if table is None:
+                return
+            numbers = pa.array(np.arange(table.num_rows, dtype=np.int64))
+            positioned = table.append_column(POSITION, numbers)
+            self.con.register(view, positioned)
+            self._keep.append(positioned)
+        self.positioned[name] = view
 
     def _register(self, name: str, view: str, obj: object) -> pa.Schema | None:
         if isinstance(obj, (str, os.PathLike)):
@@ -130,8 +161,7 @@ class DuckDBEngine:
 
             assert isinstance(obj, pd.DataFrame)
             table = pa.Table.from_pandas(obj, preserve_index=False)
-            self.con.register(view, table)
-            self._keep.append(table)
+            self._register_frame(name, view, table)
             return table.schema
         if module == "polars":
             import polars as pl
@@ -139,22 +169,19 @@ class DuckDBEngine:
             frame = obj.collect() if isinstance(obj, pl.LazyFrame) else obj
             assert isinstance(frame, pl.DataFrame)
             table = frame.to_arrow()
-            self.con.register(view, table)
-            self._keep.append(table)
+            self._register_frame(name, view, table)
             return table.schema
         if isinstance(obj, pa.Table):
-            self.con.register(view, obj)
+            self._register_frame(name, view, obj)
             return obj.schema
         if isinstance(obj, pa.RecordBatchReader):
             table = obj.read_all()
-            self.con.register(view, table)
-            self._keep.append(table)
+            self._register_frame(name, view, table)
             return table.schema
         if isinstance(obj, duckdb.DuckDBPyRelation):
             # a relation belongs to its own connection: bring it over through Arrow
             table = obj.to_arrow_table()
-            self.con.register(view, table)
-            self._keep.append(table)
+            self._register_frame(name, view, table)
             return table.schema
         msg = (
             f"data for table {name!r} is a {type(obj).__name__}; pass a pandas, polars or "
@@ -163,6 +190,11 @@ class DuckDBEngine:
         err = InputError(msg)
         err.table = name
         raise err
+
+    def _register_frame(self, name: str, view: str, table: pa.Table) -> None:
+        self.con.register(view, table)
+        self._keep.append(table)
+        self._frames[name] = table
 
     def _register_path(self, name: str, view: str, path: str) -> None:
         if "://" not in path:
@@ -229,7 +261,7 @@ class DuckDBEngine:
     # -- rendering and running -------------------------------------------------------------
 
     def render(self, plan: Plan) -> tuple[str, dict[str, object]]:
-        renderer = self.renderer(plan, self.sources)
+        renderer = self.renderer(plan, self.sources, self.positioned)
         sql = renderer.render()
         return sql, dict(renderer.params.values)
 

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 
 from ..plan import (
     LatestLookup,
@@ -14,6 +14,9 @@ from ..plan import (
     TrailingLookup,
 )
 from .sql import Params, literal, quote_ident
+
+#: the column of a positioned relation holding each row's 0-based input position
+POSITION = "__aj_pos"
 
 
 def _join(parts: Sequence[str], sep: str = ", ") -> str:
@@ -48,9 +51,17 @@ class SqlRenderer:
     #: placeholder prefix of bound parameters
     PARAM_MARKER: str = "$"
 
-    def __init__(self, plan: Plan, sources: dict[str, str]) -> None:
+    def __init__(
+        self,
+        plan: Plan,
+        sources: Mapping[str, str],
+        positioned: Mapping[str, str] | None = None,
+    ) -> None:
         self.plan = plan
         self.sources = sources  # table name -> relation name the engine registered
+        # table name -> a relation of the same rows with a POSITION column (0-based input
+        # position), when the engine can give one cheaply; others number rows in the query
+        self.positioned = dict(positioned or {})
         self.params = Params(marker=self.PARAM_MARKER, quote=self.literal)
         self.ctes: list[tuple[str, str]] = []
         self.n = Names(self.q)
@@ -61,6 +72,7 @@ class SqlRenderer:
         binding values into ``params``; its plan-level methods must not be called."""
         renderer = cls.__new__(cls)
         renderer.sources = {}
+        renderer.positioned = {}
         renderer.params = params
         renderer.ctes = []
         renderer.n = Names(renderer.q)
@@ -116,16 +128,16 @@ class SqlRenderer:
         """A timestamp as BIGINT microseconds since the epoch."""
         return f"epoch_us({expr})"
 
-    def arg_max(self, value: str, order: str) -> str:
-        """The value on the row with the greatest `order`, kept even when it is null."""
-        return f"arg_max_null({value}, {order})"
+    def input_position(self, table: str) -> str:
+        """0-based position of a row of `table` in its input order.
 
-    def valid_then_order(self, valid: str, ordinal: str) -> str:
-        """One sortable key for (valid time, input position): microseconds * 2^40 + position."""
-        return f"CAST({self.epoch_us(valid)} AS HUGEINT) * 1099511627776 + {ordinal}"
-
-    def row_number_in_input_order(self) -> str:
-        return "row_number() OVER ()"
+        Read from the POSITION column when the engine bound one (a Parquet file's row number,
+        or a column added to an in-memory frame); otherwise numbered in the query, which DuckDB
+        does in a single-threaded pass over the table.
+        """
+        if table in self.positioned:
+            return self.q(POSITION)
+        return "(row_number() OVER () - 1)"
 
     def last_non_null(self, expr: str) -> str:
         """The window function taking the last non-null value of the frame."""
@@ -162,6 +174,10 @@ class SqlRenderer:
     def source(self, table: str) -> str:
         return self.q(self.sources[table])
 
+    def numbered_source(self, table: str) -> str:
+        """The relation to read `table` from where rows need their input position."""
+        return self.q(self.positioned.get(table, self.sources[table]))
+
     def time_expr(self, ref: TimeRef, alias: str | None = None) -> str:
         col = self.q(ref.column) if alias is None else f"{alias}.{self.q(ref.column)}"
         if ref.nanos:
@@ -181,14 +197,22 @@ class SqlRenderer:
         self.ctes.append((name, body))
         return self.q(name)
 
-    def qualify(self, source: str, window: str, condition: Callable[[str], str]) -> str:
-        """Rows of `source` for which `condition(window expression)` holds."""
+    def qualify(
+        self,
+        source: str,
+        windows: Sequence[str],
+        condition: Callable[..., str],
+        columns: str = "*",
+    ) -> str:
+        """`columns` of the rows of `source` for which `condition(*window expressions)` holds."""
         if self.SUPPORTS_QUALIFY:
-            return f"SELECT *\n    FROM {source}\n    QUALIFY {condition(window)}"
+            return f"SELECT {columns}\n    FROM {source}\n    QUALIFY {condition(*windows)}"
         n = self.n
+        named = [n("q", i) for i in range(len(windows))]
+        computed = _join([f"{w} AS {name}" for w, name in zip(windows, named, strict=True)])
         return (
-            f"SELECT * FROM (SELECT *, {window} AS {n.q}\n    FROM {source}) AS {n.qs}\n"
-            f"    WHERE {condition(n.q)}"
+            f"SELECT {columns} FROM (SELECT *, {computed}\n    FROM {source}) AS {n.qs}\n"
+            f"    WHERE {condition(*named)}"
         )
 
     # -- steps ------------------------------------------------------------------------------
@@ -248,8 +272,9 @@ class SqlRenderer:
         else:
             picked = "*, "
         body = (
-            f"SELECT {self.row_number_in_input_order()} - 1 AS {n.row}, "
-            f"{picked}{self.time_expr(lab.time)} AS {n.t}\n    FROM {self.source(lab.table)}"
+            f"SELECT {self.input_position(lab.table)} AS {n.row}, "
+            f"{picked}{self.time_expr(lab.time)} AS {n.t}\n"
+            f"    FROM {self.numbered_source(lab.table)}"
         )
         return self.cte("__aj_labels", body)
 
@@ -274,9 +299,10 @@ class SqlRenderer:
             where.append(f"{q(lookup.known.column)} IS NOT NULL")
         body = (
             f"SELECT {_join(keys)}, {s} AS {n.s}, {k} AS {n.kt}, "
-            f"{self.row_number_in_input_order()} AS {n.ord}"
+            f"{self.input_position(lookup.table)} AS {n.ord}"
             + (", " + _join(vals) if vals else "")
-            + f"\n    FROM {self.source(lookup.table)}\n    WHERE {_join(where, ' AND ')}"
+            + f"\n    FROM {self.numbered_source(lookup.table)}\n"
+            f"    WHERE {_join(where, ' AND ')}"
         )
         return self.cte(f"__aj_rows{lookup.step}", body)
 
@@ -286,32 +312,36 @@ class SqlRenderer:
         keys = [n("k", i) for i in range(len(lookup.table_keys))]
         vals = [n("v", i) for i in range(len(lookup.values))]
         if lookup.reduction == Reduction.VALID:
-            # ties on (key, valid time): the last row in input order wins
-            picks = [self.arg_max(v, n.ord) + f" AS {v}" for v in vals]
+            # ties on (key, valid time): the last row in input order wins. One sort by (key,
+            # valid time, input order) keeps each row the next one does not tie with; the
+            # as-of join then reads that order (cheaper than a hash aggregate on 10M groups)
             at = n.s
             if lookup.delay_us:
                 at = self.time_plus(n.s, lookup.delay_us)
-            body = (
-                f"SELECT {_join(keys)}, {n.s}, {at} AS {n.at}"
-                + "".join(", " + p for p in picks)
-                + f"\n    FROM {rows} GROUP BY {_join(keys)}, {n.s}"
+            nxt = f"lead({n.s}) OVER (PARTITION BY {_join(keys)} ORDER BY {n.s}, {n.ord})"
+            body = self.qualify(
+                rows,
+                [nxt],
+                lambda following: f"{following} IS DISTINCT FROM {n.s}",
+                columns=f"{_join(keys)}, {n.s}, {at} AS {n.at}" + "".join(", " + v for v in vals),
             )
             return self.cte(f"__aj_line{lookup.step}", body)
-        # known-time column: collapse each (key, known time) batch to its newest row (greatest
-        # valid time, then last in input order), then keep a row when its valid time is at
-        # least the running max of valid times known strictly before it
-        order = self.valid_then_order(n.s, n.ord)
-        picks = [self.arg_max(v, order) + f" AS {v}" for v in [n.s, *vals]]
-        grouped = self.cte(
-            f"__aj_batch{lookup.step}",
-            f"SELECT {_join(keys)}, {n.kt} AS {n.at}, {_join(picks)}\n"
-            f"    FROM {rows} GROUP BY {_join(keys)}, {n.kt}",
+        # known-time column: in one sort by (key, known time, valid time, input order), keep
+        # the newest row of each known-time batch (the next row is in another batch) when its
+        # valid time is at least the greatest valid time of every row before it. Rows before
+        # it in its own batch have no greater valid time, so that is the running max over the
+        # batches known strictly earlier.
+        order = f"PARTITION BY {_join(keys)} ORDER BY {n.kt}, {n.s}, {n.ord}"
+        nxt = f"lead({n.kt}) OVER ({order})"
+        running = f"max({n.s}) OVER ({order} ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING)"
+        body = self.qualify(
+            rows,
+            [nxt, running],
+            lambda following, before: (
+                f"{following} IS DISTINCT FROM {n.kt} AND {n.s} >= coalesce({before}, {n.s})"
+            ),
+            columns=f"{_join(keys)}, {n.kt} AS {n.at}, {n.s}" + "".join(", " + v for v in vals),
         )
-        running = (
-            f"max({n.s}) OVER (PARTITION BY {_join(keys)} ORDER BY {n.at} "
-            "ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING)"
-        )
-        body = self.qualify(grouped, running, lambda w: f"{n.s} >= coalesce({w}, {n.s})")
         return self.cte(f"__aj_line{lookup.step}", body)
 
     def latest_by_window(self, lookup: LatestLookup, line: str) -> str:

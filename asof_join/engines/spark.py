@@ -17,14 +17,12 @@ import pyarrow.compute as pc
 
 from ..errors import InputError, NullTimeError, UnreadableInputError, UnsupportedByEngineError
 from ..plan import Plan
-from .render import SqlRenderer
+from .render import POSITION, SqlRenderer
 from .sql import Params, literal_backslash, quote_ident_backtick
 
 if TYPE_CHECKING:
     from pyspark.sql import DataFrame, SparkSession
 
-#: the column holding each bound row's input position (0-based for frames and single files)
-POSITION = "__aj_pos"
 #: positions of multi-file inputs: file index * 2^40 + row index in the file
 _FILE_STRIDE = 1 << 40
 _PARQUET = (".parquet", ".pq", ".parq")
@@ -84,18 +82,6 @@ class SparkRenderer(SqlRenderer):
 
     def epoch_us(self, expr: str) -> str:
         return f"unix_micros({expr})"
-
-    def arg_max(self, value: str, order: str) -> str:
-        # max_by keeps a null value of the row with the greatest order (checked in the tests)
-        return f"max_by({value}, {order})"
-
-    def valid_then_order(self, valid: str, ordinal: str) -> str:
-        # a struct sorts field by field: no arithmetic bound on positions (multi-file inputs
-        # number rows file index * 2^40 + row, beyond the 2^40 factor DuckDB's key uses)
-        return f"named_struct('s', {valid}, 'o', {ordinal})"
-
-    def row_number_in_input_order(self) -> str:
-        return f"({self.q(POSITION)} + 1)"
 
     def last_non_null(self, expr: str) -> str:
         return f"last({expr}, true)"
@@ -366,7 +352,7 @@ class SparkEngine:
     # -- rendering and running -------------------------------------------------------------
 
     def render(self, plan: Plan) -> tuple[str, dict[str, object]]:
-        renderer = SparkRenderer(plan, self.sources)
+        renderer = SparkRenderer(plan, self.sources, positioned=self.sources)
         sql = renderer.render()
         return sql, dict(renderer.params.values)
 

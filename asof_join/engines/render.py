@@ -48,6 +48,8 @@ class SqlRenderer:
     #: the dialect zips two ordered inputs row by row (POSITIONAL JOIN): label columns then skip
     #: the joins and the final sort
     SUPPORTS_POSITIONAL_JOIN: bool = True
+    #: the dialect has 128-bit integers with shifts: trailing counts share one packed sum
+    PACKS_COUNTS: bool = True
     #: placeholder prefix of bound parameters
     PARAM_MARKER: str = "$"
 

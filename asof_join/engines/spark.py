@@ -44,6 +44,7 @@ class SparkRenderer(SqlRenderer):
     SUPPORTS_ASOF_JOIN = False
     SUPPORTS_QUALIFY = False  # Spark 4 has QUALIFY; 3.5 does not
     SUPPORTS_POSITIONAL_JOIN = False
+    PACKS_COUNTS = False  # no HUGEINT: one window aggregate per output
     PARAM_MARKER = ":"
 
     def q(self, name: str) -> str:

@@ -9,6 +9,7 @@ from ..plan import (
     Lookup,
     Plan,
     Reduction,
+    Route,
     TimeKind,
     TimeRef,
     TrailingLookup,
@@ -64,6 +65,8 @@ class SqlRenderer:
         # table name -> a relation of the same rows with a POSITION column (0-based input
         # position), when the engine can give one cheaply; others number rows in the query
         self.positioned = dict(positioned or {})
+        # a frame trailing lookup whose result replaces the label relation (see render)
+        self.driving_step: int | None = None
         self.params = Params(marker=self.PARAM_MARKER, quote=self.literal)
         self.ctes: list[tuple[str, str]] = []
         self.n = Names(self.q)
@@ -75,6 +78,7 @@ class SqlRenderer:
         renderer = cls.__new__(cls)
         renderer.sources = {}
         renderer.positioned = {}
+        renderer.driving_step = None
         renderer.params = params
         renderer.ctes = []
         renderer.n = Names(renderer.q)
@@ -223,6 +227,17 @@ class SqlRenderer:
         """The whole query: CTEs for labels and each lookup, then the ordered projection."""
         q, n = self.q, self.n
         labels = self.render_labels()
+        if self.SUPPORTS_POSITIONAL_JOIN:
+            # one row per label, in no particular order, with the label relation's columns:
+            # a frame trailing result can stand in for the labels, saving one join on position
+            self.driving_step = next(
+                (
+                    lk.step
+                    for lk in self.plan.lookups
+                    if isinstance(lk, TrailingLookup) and lk.route == Route.FRAME
+                ),
+                None,
+            )
         joins: list[str] = []
         exprs: dict[str, str] = {}
         for lookup in self.plan.lookups:
@@ -239,7 +254,10 @@ class SqlRenderer:
                 )
                 raise UnsupportedByEngineError(msg)
             join, columns = method(lookup, "l")
-            joins.append(join)
+            if lookup.step == self.driving_step:
+                labels = join  # the lookup's result, carrying the label columns
+            else:
+                joins.append(join)
             for out in self.plan.outputs:
                 if out.step == lookup.step:
                     exprs[out.name] = columns[(out.slot, out.index)]
@@ -249,7 +267,7 @@ class SqlRenderer:
             # narrow rows (position, features) go through the joins and the final sort; the
             # label columns are read once more, in input order, and zipped on by position
             select = _join([f"l.{n.row}", *projections], ",\n       ")
-            body = f"SELECT {select}\nFROM {labels} AS l\n" + "\n".join(joins)
+            body = "\n".join([f"SELECT {select}\nFROM {labels} AS l", *joins])
             feats = self.cte("__aj_features", body + f"\nORDER BY l.{n.row}")
             outs = [f"f.{q(out.name)}" for out in self.plan.outputs]
             cols = [f"s.{q(c)}" for c in self.plan.labels.columns] + outs
@@ -265,6 +283,10 @@ class SqlRenderer:
 
     def _with_sql(self) -> str:
         return _join([f"{self.q(name)} AS (\n    {b}\n)" for name, b in self.ctes], ",\n")
+
+    def label_columns(self) -> list[str]:
+        """The label relation's columns besides the position (quoted): keys and time."""
+        return [*(self.q(c) for c in self.plan.labels.keys), self.n.t]
 
     def render_labels(self) -> str:
         lab = self.plan.labels

@@ -13,16 +13,24 @@ Columns = dict[tuple[str, int], str]
 
 
 def render_trailing(r: SqlRenderer, lookup: TrailingLookup, label: str) -> tuple[str, Columns]:
-    """Render one trailing lookup; returns the join clause and each value's expression."""
+    """Render one trailing lookup; returns the join clause and each value's expression.
+
+    For the renderer's driving lookup (``r.driving_step``, a frame lookup) the result carries
+    the label relation's columns, one row per label, and is returned in place of a join clause:
+    it becomes the relation the other lookups join to, which saves a join on position.
+    """
     n = r.n
     cols = _value_columns(lookup)
     rows = r.rows_cte(lookup, cols)
+    drive = lookup.step == r.driving_step
     if lookup.route == Route.FRAME:
-        result, exprs = _frame(r, lookup, rows, cols)
+        result, exprs = _frame(r, lookup, rows, cols, carry=r.label_columns() if drive else [])
     else:
         result, exprs = _sweep(r, lookup, rows, cols)
-    alias = f"f{lookup.step}"
-    join = f"LEFT JOIN {result} AS {alias} ON {alias}.{n.row} = {label}.{n.row}"
+    alias = label if drive else f"f{lookup.step}"
+    join = (
+        result if drive else f"LEFT JOIN {result} AS {alias} ON {alias}.{n.row} = {label}.{n.row}"
+    )
     columns: Columns = {}
     for i, expr in enumerate(exprs):
         value = f"{alias}.{expr}"
@@ -56,9 +64,16 @@ def _v(r: SqlRenderer, cols: list[str | None], v: TrailingValue) -> str:
 
 
 def _frame(
-    r: SqlRenderer, lookup: TrailingLookup, rows: str, cols: list[str | None]
+    r: SqlRenderer,
+    lookup: TrailingLookup,
+    rows: str,
+    cols: list[str | None],
+    carry: list[str],
 ) -> tuple[str, list[str]]:
-    """Visible rows in the window have valid time in [t - w + 1us, t - d - 1us] (strict)."""
+    """Visible rows in the window have valid time in [t - w + 1us, t - d - 1us] (strict).
+
+    `carry` names label-relation columns to pass through to the result (see render_trailing).
+    """
     n = r.n
     keys = _keys(r, lookup)
     # label position p = t - d - 1us (strict) or t - d (inclusive); frame [p - offset, p]
@@ -70,11 +85,14 @@ def _frame(
         f"SELECT {', '.join(keys)}, {r.epoch_us(n.s)} AS {n.p}, "
         f"CAST(NULL AS BIGINT) AS {n.row}, 1 AS {n.one}"
         + "".join(", " + v for v in vals)
+        + "".join(f", NULL AS {c}" for c in carry)
         + f"\n    FROM {rows}\n    UNION ALL\n    SELECT {', '.join(_label_keys(r, lookup))}, "
         f"{r.epoch_us(n.t)} - {int(shift)} AS {n.p}, {n.row}, NULL AS {n.one}"
         + "".join(", " + v for v in null_vals)
+        + "".join(f", {c}" for c in carry)
         + f"\n    FROM {n.labels}",
     )
+    passed = "".join(f", {c}" for c in carry)
     windows: dict[int, str] = {}
     aggregates = _Aggregates(r)
     exprs: list[str] = []
@@ -101,7 +119,7 @@ def _frame(
         for off, name in windows.items()
     )
     body = (
-        f"SELECT {n.row}, {', '.join(outputs)} FROM (\n    SELECT {n.row}, "
+        f"SELECT {n.row}{passed}, {', '.join(outputs)} FROM (\n    SELECT {n.row}{passed}, "
         f"{', '.join(aggregates.selects())}\n    FROM {union}\n"
         f"    WINDOW {window_sql})\n    WHERE {n.row} IS NOT NULL"
     )

@@ -30,12 +30,7 @@ rule                       severity  fires when
 
 from __future__ import annotations
 
-import dataclasses
 import datetime as dt
-import decimal
-import enum
-import json
-import math
 import os
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
@@ -46,22 +41,55 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from .audit_report import (
+    _RULE_ORDER,
+    ABS_TOLERANCE,
+    AGE_BINS,
+    PROXY_AUC,
+    PROXY_EQUAL_SHARE,
+    PROXY_MIN_CLASS_ROWS,
+    REL_TOLERANCE,
+    RULE_SEVERITY,
+    AgeHistogram,
+    AuditReport,
+    Cause,
+    Finding,
+    Rule,
+    Severity,
+)
+from .audit_sql import (
+    _AUD,
+    _AWARE,
+    _NUMERIC,
+    _POS,
+    _bin_sql,
+    _bins,
+    _canon_sql,
+    _describe,
+    _duck_types,
+    _eq_sql,
+    _family,
+    _filled,
+    _micros_sql,
+    _micros_to_py,
+    _params,
+    _rows,
+    _unbounded,
+)
 from .durations import format_duration, parse_duration, to_micros
 from .engines.sql import Params, quote_ident
 from .errors import (
     ColumnNotFoundError,
     InputError,
     SpecError,
-    TimeTypeError,
     UnknownTableError,
     UnreadableInputError,
 )
-from .plan import LatestLookup, TimeKind, TimeRef
-from .spec import Latest, Trailing, TrainingSetSpec
+from .plan import LatestLookup
+from .spec import Latest, TrainingSetSpec
 
 if TYPE_CHECKING:
     import duckdb
-    import pandas as pd
 
     from .build import TrainingSet
     from .plan import Plan, TrailingLookup
@@ -87,222 +115,9 @@ __all__ = [
 
 q = quote_ident
 
-#: Floats are equal when ``|a - b| <= max(ABS_TOLERANCE, REL_TOLERANCE * max(|a|, |b|))``.
-REL_TOLERANCE = 1e-9
-ABS_TOLERANCE = 1e-12
-#: label_proxy: ROC AUC at or above this (or at or below 1 - this) for a numeric feature ...
-PROXY_AUC = 0.99
-#: ... or the feature equals the label on at least this share of the labelled rows ...
-PROXY_EQUAL_SHARE = 0.99
-#: ... measured only when each label class has at least this many rows with a feature value.
-PROXY_MIN_CLASS_ROWS = 10
-
-_DAY_US = 86_400_000_000
-#: Chart bins of the supplying row's age at label time (t - valid time): (label, upper bound in
-#: microseconds, inclusive). The first bin holds rows from the label's instant or later.
-AGE_BINS: tuple[tuple[str, int | None], ...] = (
-    ("<=0", 0),
-    ("1m", 60_000_000),
-    ("10m", 600_000_000),
-    ("1h", 3_600_000_000),
-    ("6h", 21_600_000_000),
-    ("1d", _DAY_US),
-    ("7d", 7 * _DAY_US),
-    ("30d", 30 * _DAY_US),
-    ("90d", 90 * _DAY_US),
-    ("1y", 365 * _DAY_US),
-    (">1y", None),
-)
-_EDGES = np.array([b for _, b in AGE_BINS if b is not None], dtype=np.int64)
-
 #: Name the label table gets while the audit recomputes (it appears in error messages).
 _FRAME = "audited frame"
 _RESERVED = "__aj_"
-_INT_TYPES = frozenset(
-    {"TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT"}
-    | {"UTINYINT", "USMALLINT", "UINTEGER", "UBIGINT", "UHUGEINT"}
-)
-_NUMERIC = frozenset({"int", "float", "bool"})
-
-
-class Severity(str, enum.Enum):
-    """How bad a finding is. ``AuditReport.ok`` is False when any finding is an error."""
-
-    ERROR = "error"  #: leakage, or a set that cannot be trusted
-    WARNING = "warning"  #: a defect that is not proven leakage
-
-    @property
-    def rank(self) -> int:
-        """2 for error, 1 for warning: a finding reaches a level when its rank is at least it."""
-        return 2 if self is Severity.ERROR else 1
-
-
-class Rule(str, enum.Enum):
-    """The audit's rule ids (the values are part of the interface)."""
-
-    FUTURE_ROW = "future_row"
-    NOT_YET_KNOWN = "not_yet_known"
-    VALUE_MISMATCH = "value_mismatch"
-    STALE_VALUE = "stale_value"
-    LABEL_PROXY = "label_proxy"
-    SPLIT_OVERLAP = "split_overlap"
-    AMBIGUOUS_SOURCE_ROWS = "ambiguous_source_rows"
-    KNOWN_BEFORE_VALID = "known_before_valid"
-
-
-class Cause(str, enum.Enum):
-    """Why a ``value_mismatch`` happened, when the audit can tell."""
-
-    #: equals the value of a source row of the same key not yet visible at the label time
-    LATER_ROW = "later_row"
-    #: (trailing) equals the aggregate over the window that also counts rows not yet visible
-    NOT_YET_VISIBLE_ROWS = "not_yet_visible_rows"
-    #: no later row or leaky window explains the value
-    UNKNOWN = "unknown"
-
-
-#: Each rule's severity; ``value_mismatch`` is an error only with a leak cause, else a warning.
-RULE_SEVERITY: dict[Rule, Severity] = {
-    Rule.FUTURE_ROW: Severity.ERROR,
-    Rule.NOT_YET_KNOWN: Severity.ERROR,
-    Rule.VALUE_MISMATCH: Severity.ERROR,
-    Rule.STALE_VALUE: Severity.WARNING,
-    Rule.LABEL_PROXY: Severity.ERROR,
-    Rule.SPLIT_OVERLAP: Severity.ERROR,
-    Rule.AMBIGUOUS_SOURCE_ROWS: Severity.WARNING,
-    Rule.KNOWN_BEFORE_VALID: Severity.WARNING,
-}
-_RULE_ORDER = {rule: i for i, rule in enumerate(Rule)}
-
-
-@dataclass(frozen=True)
-class Finding:
-    """One rule's result for one feature (or table, or pair of splits).
-
-    ``rows`` counts the offending rows and ``positions`` lists all of them, 0-based, in the
-    audited frame, except: for ``ambiguous_source_rows`` and ``known_before_valid`` they are
-    positions in the source table named by ``table``; ``label_proxy`` is a column-level finding
-    whose ``rows`` is the number of rows measured and whose ``positions`` is empty.
-    ``examples`` holds a few offending rows as dicts (``position``, ``key``, ``label_time``,
-    ``supplied``, ``point_in_time``, ``later_row_time``, ... as the rule has them).
-    """
-
-    rule: Rule
-    severity: Severity
-    feature: str | None
-    rows: int
-    positions: list[int]
-    examples: list[dict[str, Any]]
-    message: str = ""
-    table: str | None = None
-    cause: Cause | None = None
-    details: dict[str, Any] = field(default_factory=dict)
-
-    def to_dict(self) -> dict[str, Any]:
-        """The finding as plain JSON-ready values (enums as their ids)."""
-        return {
-            "rule": self.rule.value,
-            "severity": self.severity.value,
-            "feature": self.feature,
-            "table": self.table,
-            "cause": None if self.cause is None else self.cause.value,
-            "rows": self.rows,
-            "message": self.message,
-            "positions": list(self.positions),
-            "examples": _plain(self.examples),
-            "details": _plain(self.details),
-        }
-
-
-@dataclass(frozen=True)
-class AgeHistogram:
-    """Per feature: how old the supplying row was at label time, clean and flagged rows apart."""
-
-    feature: str
-    clean: tuple[int, ...]  #: rows per AGE_BINS bin that no rule flagged
-    flagged: tuple[int, ...]  #: rows per bin flagged by a rule of this feature
-    unplaced: int = 0  #: flagged rows whose supplying row is unknown (value_mismatch, unknown)
-
-    @property
-    def labels(self) -> tuple[str, ...]:
-        """The bins' labels (AGE_BINS)."""
-        return tuple(label for label, _ in AGE_BINS)
-
-
-@dataclass
-class AuditReport:
-    """What ``audit()`` found. Never raised: read ``ok`` or ``fails()`` to gate a pipeline."""
-
-    findings: list[Finding]
-    rows: int
-    #: feature -> how it was checked: "provenance", "recomputation", both, or "not checked"
-    checked: dict[str, str]
-    notes: list[str]
-    charts: dict[str, AgeHistogram]
-    fingerprint: str
-    label: str | None = None
-    split: str | None = None
-
-    @property
-    def ok(self) -> bool:
-        """False when any finding has severity ``error``."""
-        return not self.fails(Severity.ERROR)
-
-    def fails(self, at: Severity | str = Severity.ERROR) -> bool:
-        """True when some finding's severity reaches ``at`` ("error" or "warning")."""
-        level = Severity(at)
-        return any(f.severity.rank >= level.rank for f in self.findings)
-
-    def count(self, severity: Severity | str) -> int:
-        """How many findings have exactly this severity."""
-        level = Severity(severity)
-        return sum(f.severity is level for f in self.findings)
-
-    def to_frame(self) -> pd.DataFrame:
-        """One row per finding: rule, severity, feature, table, cause, rows, message, examples."""
-        import pandas as pd
-
-        columns = ["rule", "severity", "feature", "table", "cause", "rows", "message", "examples"]
-        records = [{c: f.to_dict()[c] for c in columns} for f in self.findings]
-        return pd.DataFrame.from_records(records, columns=columns)
-
-    def to_dict(self) -> dict[str, Any]:
-        """The report as plain JSON-ready values."""
-        return {
-            "ok": self.ok,
-            "rows": self.rows,
-            "fingerprint": self.fingerprint,
-            "label": self.label,
-            "split": self.split,
-            "errors": self.count(Severity.ERROR),
-            "warnings": self.count(Severity.WARNING),
-            "checked": dict(self.checked),
-            "findings": [f.to_dict() for f in self.findings],
-            "notes": list(self.notes),
-            "charts": {
-                name: {
-                    "bins": list(h.labels),
-                    "clean": list(h.clean),
-                    "flagged": list(h.flagged),
-                    "unplaced": h.unplaced,
-                }
-                for name, h in self.charts.items()
-            },
-        }
-
-    def to_json(self, *, indent: int | None = 2) -> str:
-        """The report as JSON text (every position listed; times as ISO 8601)."""
-        return json.dumps(self.to_dict(), indent=indent, ensure_ascii=False)
-
-    def __str__(self) -> str:
-        from .audit_render import render_text
-
-        return render_text(self)
-
-    def _repr_html_(self) -> str:
-        from .audit_render import render_html
-
-        return render_html(self)
 
 
 def audit(
@@ -1554,154 +1369,3 @@ class _Auditor:
                     examples,
                     details={"earlier": earlier, "later": later, "gap": gap_text},
                 )
-
-
-_POS = "__aj_pos"
-_AUD = "__aj_aud"
-_AWARE = ("TIMESTAMP WITH TIME ZONE", "TIMESTAMPTZ_NS")
-
-
-def _rows(n: int) -> str:
-    return f"{n:,} row{'' if n == 1 else 's'}"
-
-
-def _describe(feat: Feature) -> str:
-    if isinstance(feat, Latest):
-        return f"Latest({feat.table.name!r}, {list(feat.columns)})"
-    assert isinstance(feat, Trailing)
-    return f"Trailing({feat.table.name!r}, {feat.column!r}, {feat.agg!r})"
-
-
-def _unbounded(feat: Feature) -> Feature:
-    """A latest feature without max_age, so the audit sees the row a stale value came from."""
-    if isinstance(feat, Latest) and feat.max_age is not None:
-        return feat.model_copy(update={"max_age": None})
-    return feat
-
-
-def _params(**values: object) -> Params:
-    p = Params()
-    p.values.update(values)
-    return p
-
-
-def _duck_types(con: duckdb.DuckDBPyConnection, relation: str) -> dict[str, str]:
-    rel = con.sql(f"SELECT * FROM {relation} LIMIT 0")
-    return {name: str(typ) for name, typ in zip(rel.columns, rel.types, strict=True)}
-
-
-def _family(duck_type: str) -> str:
-    """The comparison family of a DuckDB type: int, float, bool, text, or the type itself."""
-    t = duck_type.upper()
-    if t in _INT_TYPES:
-        return "int"
-    if t in ("FLOAT", "DOUBLE") or t.startswith("DECIMAL"):
-        return "float"
-    if t == "BOOLEAN":
-        return "bool"
-    if t == "VARCHAR" or t.startswith("ENUM"):
-        return "text"
-    return t
-
-
-def _eq_sql(a: str, b: str, fa: str, fb: str) -> str:
-    """Never-null equality: null equals null; floats (NaN as null) within the tolerance."""
-    if fa == fb and fa != "float":
-        return f"({a} IS NOT DISTINCT FROM {b})"
-    if fa in _NUMERIC and fb in _NUMERIC:
-        x = f"nullif(CAST({a} AS DOUBLE), 'NaN'::DOUBLE)"
-        y = f"nullif(CAST({b} AS DOUBLE), 'NaN'::DOUBLE)"
-        close = (
-            f"isfinite({x}) AND isfinite({y}) AND abs({x} - {y}) <= "
-            f"greatest({ABS_TOLERANCE!r}, {REL_TOLERANCE!r} * greatest(abs({x}), abs({y})))"
-        )
-        return (
-            f"(CASE WHEN {x} IS NULL OR {y} IS NULL THEN {x} IS NULL AND {y} IS NULL "
-            f"ELSE {x} = {y} OR ({close}) END)"
-        )
-    return f"(CAST({a} AS VARCHAR) IS NOT DISTINCT FROM CAST({b} AS VARCHAR))"
-
-
-def _canon_sql(x: str, own: str, other: str) -> str:
-    """The value an ASOF join matches on: floats as float32 (the tolerance is checked after)."""
-    if own == other and own != "float":
-        return x
-    if own in _NUMERIC and other in _NUMERIC:
-        return f"CAST(nullif(CAST({x} AS DOUBLE), 'NaN'::DOUBLE) AS FLOAT)"
-    return f"CAST({x} AS VARCHAR)"
-
-
-def _micros_sql(duck_type: str, name: str, p: Params, zone: str | None) -> str:
-    """Epoch microseconds of a time column, normalized exactly as build() does (the engine's
-    renderer): an aware value is its instant; a naive one (or a date, at midnight) is read in
-    ``zone`` when given; nanoseconds are floored."""
-    from .engines.duckdb import DuckDBRenderer
-
-    if duck_type in _AWARE:
-        kind = TimeKind.AWARE
-    elif duck_type == "DATE":
-        kind = TimeKind.DATE
-    elif duck_type.startswith("TIMESTAMP"):
-        kind = TimeKind.NAIVE
-    else:
-        msg = (
-            f"column {name!r} has type {duck_type}, not a timestamp or date; the audit compares "
-            "it as a time: convert it (e.g. pandas.to_datetime)"
-        )
-        err = TimeTypeError(msg)
-        err.column = name
-        raise err
-    ref = TimeRef(
-        name, kind, None if kind == TimeKind.AWARE else zone, nanos=duck_type.endswith("_NS")
-    )
-    return f"epoch_us({DuckDBRenderer.for_expressions(p).time_expr(ref)})"
-
-
-def _bin_sql(age: str) -> str:
-    parts = [f"WHEN ({age}) <= {int(edge)} THEN {i}" for i, edge in enumerate(_EDGES)]
-    return f"CASE {' '.join(parts)} ELSE {len(_EDGES)} END"
-
-
-def _bins(age_us: np.ndarray) -> np.ndarray:
-    """AGE_BINS index per age in microseconds (same bins as _bin_sql)."""
-    out: np.ndarray = np.searchsorted(_EDGES, np.asarray(age_us, dtype=np.int64), side="left")
-    return out
-
-
-def _filled(column: pa.ChunkedArray | pa.Array) -> np.ndarray:
-    out: np.ndarray = column.fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64)
-    return out
-
-
-def _micros_to_py(column: pa.ChunkedArray | pa.Array) -> list[dt.datetime | None]:
-    """Epoch microseconds as naive datetimes (UTC when the set is timezone-aware)."""
-    typed = column.cast(pa.int64()).cast(pa.timestamp("us"))
-    values: list[dt.datetime | None] = typed.to_pylist()
-    return values
-
-
-def _plain(value: Any) -> Any:
-    """JSON-ready: datetimes as ISO text, numpy scalars unwrapped, NaN as null."""
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_plain(v) for v in value]
-    if isinstance(value, enum.Enum):
-        return value.value
-    if isinstance(value, (dt.datetime, dt.date, dt.time)):
-        return value.isoformat()
-    if isinstance(value, dt.timedelta):
-        return format_duration(value)
-    if isinstance(value, np.generic):
-        return _plain(value.item())
-    if isinstance(value, float) and not math.isfinite(value):
-        return None if math.isnan(value) else str(value)
-    if isinstance(value, decimal.Decimal):
-        return str(value)
-    if isinstance(value, bytes):
-        return value.hex()
-    if value is None or isinstance(value, (str, int, float, bool)):
-        return value
-    if dataclasses.is_dataclass(value) and not isinstance(value, type):
-        return _plain(dataclasses.asdict(value))
-    return str(value)

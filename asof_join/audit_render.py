@@ -7,7 +7,7 @@ import html
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
-    from .audit import AgeHistogram, AuditReport, Finding
+    from .audit_report import AgeHistogram, AuditReport, Finding
 
 __all__ = ["render_html", "render_text"]
 

@@ -24,12 +24,18 @@ HERE = Path(__file__).resolve().parent
 METHODS_SCRIPT = HERE / "methods.py"
 
 SCENARIOS: dict[str, tuple[str, list[str]]] = {
-    "a": ("one-table plain latest", ["a:build", "a:hand_sql", "a:pandas", "a:polars", "a:floor"]),
+    "a": (
+        "one-table plain latest",
+        ["a:build", "a:hand_sql", "a:hand_sql_ties", "a:pandas", "a:polars", "a:floor"],
+    ),
     "b": (
         "one-table known-time latest",
         ["b:build", "b:hand_sql", "b:hand_sql_range", "b:floor"],
     ),
-    "c": ("three-table plain latest", ["c:build", "c:hand_sql", "c:floor"]),
+    "c": (
+        "three-table plain latest",
+        ["c:build", "c:hand_sql", "c:hand_sql_ties", "c:floor"],
+    ),
     "d": ("one-table plain latest, build() under memory_limit", ["d:build", "d:build_parquet"]),
 }
 

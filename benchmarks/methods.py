@@ -147,6 +147,44 @@ ORDER BY l.file_row_number
 """
 
 
+def _last_tied(params: dict[str, Any], name: str, key: str, time: str, value: str) -> str:
+    """A feature table with ties on (key, time) resolved as the contract does: last in file."""
+    path = _lit(params["paths"][name])
+    return f"""(
+  SELECT {key}, {time}, {value} FROM read_parquet({path}, file_row_number = true)
+  QUALIFY row_number() OVER (PARTITION BY {key}, {time} ORDER BY file_row_number DESC) = 1
+)"""
+
+
+def hand_sql_plain_ties(params: dict[str, Any]) -> str:
+    """(a)'s hand SQL plus the contract's tie-break, written the way a person would."""
+    return f"""
+SELECT l.* EXCLUDE (file_row_number), r.score
+FROM {_labels_scan(params)} AS l
+ASOF LEFT JOIN {_last_tied(params, "profiles", "customer_id", "updated_at", "score")} AS r
+  ON l.customer_id = r.customer_id AND l.event_at > r.updated_at
+ORDER BY l.file_row_number
+"""
+
+
+def hand_sql_three_ties(params: dict[str, Any]) -> str:
+    """(c)'s hand SQL plus the contract's tie-break on each table."""
+    profiles = _last_tied(params, "profiles", "customer_id", "updated_at", "score")
+    prices = _last_tied(params, "prices", "plant_id", "effective_at", "price")
+    stats = _last_tied(params, "stats", "customer_id", "computed_at", "orders_90d")
+    return f"""
+SELECT l.* EXCLUDE (file_row_number), p.score, q.price, s.orders_90d
+FROM {_labels_scan(params)} AS l
+ASOF LEFT JOIN {profiles} AS p
+  ON l.customer_id = p.customer_id AND l.event_at > p.updated_at
+ASOF LEFT JOIN {prices} AS q
+  ON l.plant_id = q.plant_id AND l.event_at > q.effective_at
+ASOF LEFT JOIN {stats} AS s
+  ON l.customer_id = s.customer_id AND l.event_at > s.computed_at
+ORDER BY l.file_row_number
+"""
+
+
 def hand_sql_timeline(params: dict[str, Any]) -> str:
     """Known-time latest: a known-time timeline, then one as-of join on known time.
 
@@ -342,6 +380,8 @@ METHODS: dict[str, Method] = {
                _build_arrow("plain"), _extract_arrow),
         Method("a:hand_sql", "hand SQL: DuckDB ASOF LEFT JOIN", PLAIN, "hand",
                _hand(hand_sql_plain), _extract_arrow),
+        Method("a:hand_sql_ties", "hand SQL: ASOF + tie-break by file order", PLAIN, "other",
+               _hand(hand_sql_plain_ties), _extract_arrow),
         Method("a:pandas", "pandas merge_asof", PLAIN, "other", pandas_plain, _extract_pandas),
         Method("a:polars", "polars join_asof (lazy)", PLAIN, "other", polars_plain,
                _extract_polars),
@@ -359,6 +399,8 @@ METHODS: dict[str, Method] = {
                _build_arrow("three"), _extract_arrow),
         Method("c:hand_sql", "hand SQL: 3 chained ASOF LEFT JOINs", THREE, "hand",
                _hand(hand_sql_three), _extract_arrow),
+        Method("c:hand_sql_ties", "hand SQL: 3 chained ASOF + tie-break by file order", THREE,
+               "other", _hand(hand_sql_three_ties), _extract_arrow),
         Method("c:floor", "floor: DuckDB read + sort inputs", THREE, "floor",
                _floor("three"), _extract_none),
         Method("d:build", "aj.build, memory_limit → to_arrow()", PLAIN, "build",
@@ -371,6 +413,8 @@ METHODS: dict[str, Method] = {
 IMPORTS: dict[str, Callable[[], None]] = {
     "build": _import_build,
     "hand": _import_duckdb,
+    "a:hand_sql_ties": _import_duckdb,
+    "c:hand_sql_ties": _import_duckdb,
     "floor": _import_duckdb,
     "a:pandas": _import_pandas,
     "a:polars": _import_polars,

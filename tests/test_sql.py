@@ -76,6 +76,25 @@ def test_hostile_names_end_to_end() -> None:
     assert out["n dist; select"].tolist() == [1, 0, 0]
 
 
+def test_readable_sql_header_stays_in_comments(tmp_path: Path) -> None:
+    """The readable SQL names each view's source in comment lines; a table name or path with
+    a line break cannot end the comment and start a statement."""
+    who = aj.Entity("c", keys=["k"])
+    name = "l\nDROP TABLE x; --"
+    labels = aj.EventTable(name, time="t", entities=[who])
+    src = aj.EventTable("s", time="t", entities=[who])
+    spec = aj.TrainingSetSpec(labels=labels, features=[aj.Latest(src, ["v"])])
+    frame = pd.DataFrame({"k": [1], "t": pd.to_datetime(["2024-01-02"]), "v": [1.0]})
+    folder = tmp_path / "a\nSELECT 1;"
+    folder.mkdir()
+    frame.to_parquet(folder / "s.parquet")
+    ts = aj.build(spec, data={name: frame[["k", "t"]], "s": str(folder / "s.parquet")})
+    lines = ts.sql.splitlines()
+    header = lines[: lines.index(next(x for x in lines if x.startswith("WITH")))]
+    assert len(header) == 4 and all(x.startswith("-- ") for x in header)
+    assert "file_row_number" in header[3] and "row position" in header[1]
+
+
 def test_values_are_bound_not_pasted() -> None:
     """Durations and zones travel as parameters: the SQL text holds placeholders."""
     who = aj.Entity("c", keys=["k"])

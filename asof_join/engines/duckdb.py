@@ -108,6 +108,8 @@ class DuckDBEngine:
         self.arrow_schemas: dict[str, pa.Schema] = {}
         self._keep: list[object] = []
         self._frames: dict[str, pa.Table] = {}  # in-memory inputs, as registered
+        # table name -> SQL comment lines saying what its views hold (for readable SQL)
+        self.definitions: dict[str, list[str]] = {}
 
     # -- binding ---------------------------------------------------------------------------
 
@@ -123,7 +125,25 @@ class DuckDBEngine:
             schemas[name] = schema
             self.arrow_schemas[name] = original if original is not None else schema
             self._position(name, f"aj_pos_{i}", obj, schema)
+            self._define(name, view, obj)
         return schemas
+
+    def _define(self, name: str, view: str, obj: object) -> None:
+        """Comment lines for readable SQL: what each registered view holds (reprs: one line)."""
+        if isinstance(obj, (str, os.PathLike)):
+            what = f"{os.fspath(obj)!r}"
+        else:
+            rows = self._frames[name].num_rows if name in self._frames else "?"
+            kind = f"{type(obj).__module__.split('.')[0]} {type(obj).__name__}"
+            what = f"a {kind} ({rows} rows)"
+        lines = [f"-- {quote_ident(view)}: table {name!r}, {what}"]
+        if name in self.positioned:
+            how = "file_row_number" if isinstance(obj, (str, os.PathLike)) else "row position"
+            lines.append(
+                f"-- {quote_ident(self.positioned[name])}: the same rows with "
+                f"{quote_ident(POSITION)} = {how}"
+            )
+        self.definitions[name] = lines
 
     def _position(self, name: str, view: str, obj: object, schema: pa.Schema) -> None:
         """Register `view`: the table's rows with POSITION, their 0-based input position.
@@ -133,11 +153,13 @@ class DuckDBEngine:
         (``file_row_number``) and an in-memory frame takes a column. CSV files and multi-file
         globs are numbered in the query.
         """
-        if POSITION in schema.names or "file_row_number" in schema.names:
+        if POSITION in schema.names:
             return
         if isinstance(obj, (str, os.PathLike)):
             path = os.fspath(obj)
             if not path.lower().endswith(_PARQUET) or glob.has_magic(path):
+                return
+            if "file_row_number" in schema.names:  # a real column would hide the virtual one
                 return
             rel = self.con.read_parquet(path)
             rel.select(f"*, file_row_number AS {quote_ident(POSITION)}").create_view(view)
@@ -293,7 +315,8 @@ class DuckDBResult:
         """The SQL with parameters written inline, for reading (the run binds them)."""
         from .sql import Params
 
-        return Params(dict(self.params)).inline(self.sql)
+        head = [line for name in self.plan.tables for line in self.engine.definitions[name]]
+        return "\n".join([*head, Params(dict(self.params)).inline(self.sql)])
 
     def relation(self) -> duckdb.DuckDBPyRelation:
         return self.engine.con.sql(self.sql, params=self.params)

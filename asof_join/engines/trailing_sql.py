@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
+from collections.abc import Callable, Hashable
+from typing import TYPE_CHECKING, cast
 
 from ..plan import Route, TrailingLookup, TrailingValue
 
@@ -97,7 +98,8 @@ def _frame(
     aggregates = _Aggregates(r)
     exprs: list[str] = []
     outputs: list[str] = []
-    for i, v in enumerate(lookup.values):
+    plans: list[tuple[TrailingValue, str, str, bool]] = []  # (value, x or alias, window, fused)
+    for v in lookup.values:
         offset = v.over_us - shift - 1
         never = offset < 0  # the window closes before anything is visible
         offset = max(offset, 0)
@@ -105,11 +107,15 @@ def _frame(
             windows[offset] = f"w{len(windows)}"
         w = windows[offset]
         x = n.one if v.column is None else _v(r, cols, v)
-        if r.PACKS_COUNTS and not never and v.agg in ("count", "sum", "mean"):
-            out = aggregates.fused(v, x, w)
+        fused = r.PACKS_COUNTS and not never and v.agg in ("count", "sum", "mean")
+        if fused:
+            aggregates.need(v, x, w)  # every count first, so they pair up in lanes
         else:
             x, flt = r.never(x) if never else (x, "")
-            out = aggregates.add(_frame_agg(r, v, x, flt, w))
+            x = aggregates.add(_frame_agg(r, v, x, flt, w))
+        plans.append((v, x, w, fused))
+    for i, (v, x, w, fused) in enumerate(plans):
+        out = aggregates.fused(v, x, w) if fused else x
         outputs.append(f"{out} AS {n('a', i)}")
         exprs.append(n("a", i))
     part = ", ".join(keys)
@@ -126,24 +132,72 @@ def _frame(
     return r.cte(f"__aj_trail{lookup.step}", body), exprs
 
 
-#: lanes of a packed count: counts of rows in one window share one 128-bit sum, 64 bits each
+#: lanes of a packed count: two counts of one window share one 128-bit sum, 64 bits each
 _LANE = 1 << 64
+
+
+def _ones(x: str) -> str:
+    """1 on rows where x is not null, else 0: summed over a window, a count."""
+    return f"CASE WHEN {x} IS NULL THEN 0 ELSE 1 END"
+
+
+class _Lanes:
+    """The counts of one lookup, sharing each window's sum two at a time.
+
+    A count is a sum of 0/1 over a window. The window sums are the costly part (a segment
+    tree per frame aggregate, a running sum per sweep column), so two counts of one window are
+    the two 64-bit lanes of one HUGEINT sum (exact: a count never reaches 2^63; in the sweep a
+    lane can dip below zero between rows but is a count again at every label row). A count
+    left alone is a plain sum. Dialects without HUGEINT (``PACKS_COUNTS = False``) get one sum
+    per count. Register every count with ``need`` before reading any with ``read``.
+    """
+
+    def __init__(self, r: SqlRenderer, aggregate: Callable[[Hashable, str], str]) -> None:
+        self.r = r
+        self.aggregate = aggregate  # (window, summed expression) -> column alias
+        self._packs: list[tuple[Hashable, list[str]]] = []  # (window, 0/1 expressions)
+        self._where: dict[tuple[Hashable, str], tuple[int, int]] = {}  # -> (pack, lane)
+
+    def need(self, window: Hashable, ones: str) -> None:
+        """Register the count of `ones` over `window`."""
+        if (window, ones) in self._where:
+            return
+        pack = None
+        if self.r.PACKS_COUNTS:
+            pack = next(
+                (i for i, (w, xs) in enumerate(self._packs) if w == window and len(xs) < 2),
+                None,
+            )
+        if pack is None:
+            pack = len(self._packs)
+            self._packs.append((window, []))
+        self._packs[pack][1].append(ones)
+        self._where[(window, ones)] = (pack, len(self._packs[pack][1]) - 1)
+
+    def read(self, window: Hashable, ones: str) -> str:
+        """The count as a BIGINT expression over the aggregate's column."""
+        pack, lane = self._where[(window, ones)]
+        w, members = self._packs[pack]
+        if len(members) == 1:
+            return f"CAST(coalesce({self.aggregate(w, members[0])}, 0) AS BIGINT)"
+        a, b = (f"CAST({m} AS HUGEINT)" for m in members)
+        packed = self.aggregate(w, f"{a} * {_LANE} + {b}")
+        value = f"({packed} >> 64)" if lane == 0 else f"({packed} & {_LANE - 1})"
+        return f"CAST(coalesce({value}, 0) AS BIGINT)"
 
 
 class _Aggregates:
     """The window aggregates of one frame lookup, each computed once however many outputs use it.
 
     Every window aggregate is a pass of DuckDB's segment tree (about a third of a 5M x 10M
-    30-day build each), so outputs share them: `count`, and the denominator of `mean`, are
-    lanes of one packed sum per window (two 64-bit lanes of a HUGEINT sum, exact for any
-    table), and `mean` divides the same sum that `sum` returns.
+    30-day build each), so outputs share them: counts, and the denominator of `mean`, are
+    lanes of packed sums (`_Lanes`), and `mean` divides the same sum that `sum` returns.
     """
 
     def __init__(self, r: SqlRenderer) -> None:
         self.r = r
         self._aliases: dict[str, str] = {}  # aggregate SQL -> alias in the inner select
-        self._lanes: dict[tuple[str, str], tuple[int, int]] = {}  # (window, x) -> (pack, lane)
-        self._packs: list[tuple[str, list[str]]] = []  # (window, counted expressions)
+        self.lanes = _Lanes(r, lambda w, summed: self.add(f"sum({summed}) OVER {w}"))
 
     def add(self, aggregate: str) -> str:
         """The alias of a window aggregate, added on first use."""
@@ -151,26 +205,15 @@ class _Aggregates:
             self._aliases[aggregate] = self.r.n("g", len(self._aliases))
         return self._aliases[aggregate]
 
-    def _count(self, x: str, w: str) -> str:
-        """Rows in the frame where `x` is not null, as a lane of a packed sum."""
-        if (w, x) not in self._lanes:
-            pack = next(
-                (i for i, (pw, xs) in enumerate(self._packs) if pw == w and len(xs) < 2), None
-            )
-            if pack is None:
-                pack = len(self._packs)
-                self._packs.append((w, []))
-            self._packs[pack][1].append(x)
-            self._lanes[(w, x)] = (pack, len(self._packs[pack][1]) - 1)
-        pack, lane = self._lanes[(w, x)]
-        packed = self.r.n("pk", pack)
-        lane_sql = f"({packed} >> 64)" if lane == 0 else f"({packed} & {_LANE - 1})"
-        return f"CAST(coalesce({lane_sql}, 0) AS BIGINT)"
+    def need(self, v: TrailingValue, x: str, w: str) -> None:
+        """Register the counts a count or mean output reads (call for every output first)."""
+        if v.agg in ("count", "mean"):
+            self.lanes.need(w, _ones(x))
 
     def fused(self, v: TrailingValue, x: str, w: str) -> str:
         """The output expression of a count, sum or mean over window `w`."""
         if v.agg == "count":
-            return self._count(x, w)
+            return self.lanes.read(w, _ones(x))
         total = self.add(
             f"sum(CAST({x} AS BIGINT)) OVER {w}" if v.integer else f"sum({x}) OVER {w}"
         )
@@ -178,17 +221,11 @@ class _Aggregates:
             if v.integer:
                 return f"CAST(coalesce({total}, 0) AS BIGINT)"
             return f"coalesce({total}, 0)"
-        return f"CAST({total} AS DOUBLE) / nullif({self._count(x, w)}, 0)"
+        return f"CAST({total} AS DOUBLE) / nullif({self.lanes.read(w, _ones(x))}, 0)"
 
     def selects(self) -> list[str]:
-        """The inner select's aggregates: packed counts, then the others."""
-        out = []
-        for i, (w, xs) in enumerate(self._packs):
-            lanes = [f"CAST({x} IS NOT NULL AS HUGEINT)" for x in xs]
-            packed = f"{lanes[0]} * {_LANE}" + (f" + {lanes[1]}" if len(lanes) > 1 else "")
-            out.append(f"sum({packed}) OVER {w} AS {self.r.n('pk', i)}")
-        out += [f"{sql} AS {alias}" for sql, alias in self._aliases.items()]
-        return out
+        """The inner select's aggregates."""
+        return [f"{sql} AS {alias}" for sql, alias in self._aliases.items()]
 
 
 def _frame_agg(r: SqlRenderer, v: TrailingValue, x: str, flt: str, w: str) -> str:
@@ -285,15 +322,34 @@ def _sweep(
         f"(PARTITION BY {part} ORDER BY {n.p}, {n.kind} "
         "ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW)"
     )
-    sums: dict[str, str] = {}
+    sums: dict[str, str] = {}  # alias -> running sum, each computed once
+    aliases: dict[str, str] = {}  # running sum -> alias
 
-    def running(name: str, x: str, window_index: int) -> str:
-        if name not in sums:
-            sums[name] = (
-                f"sum(CASE WHEN {n.tag} = -1 THEN {x} "
-                f"WHEN {n.tag} = {window_index} THEN -({x}) END) OVER {win}"
-            )
-        return r.q(name)
+    def running(x: str, window_index: int) -> str:
+        """Enter rows add x, exit rows of window `window_index` subtract it: the running sum
+        at a label row is the sum over the rows whose interval holds the label."""
+        expr = (
+            f"sum(CASE WHEN {n.tag} = -1 THEN {x} "
+            f"WHEN {n.tag} = {window_index} THEN -({x}) END) OVER {win}"
+        )
+        if expr not in aliases:
+            aliases[expr] = f"r{len(aliases)}"
+            sums[aliases[expr]] = expr
+        return r.q(aliases[expr])
+
+    lanes = _Lanes(r, lambda j, summed: running(summed, cast(int, j)))
+
+    def ones(x: str | None) -> str:
+        return "1" if x is None else _ones(x)
+
+    for v in lookup.values:  # every count first, so they pair up in lanes
+        if v.agg in ("count", "mean", "std") or (v.agg == "sum" and not v.integer):
+            x = None if v.column is None else _v(r, cols, v)
+            lanes.need(windows.index(v.over_us), ones(x))
+
+    def count(x: str | None, window_index: int) -> str:
+        """Rows of window `window_index` holding the label where x is not null (BIGINT)."""
+        return lanes.read(window_index, ones(x))
 
     outs: list[str | None] = []
     need_ranks = any(v.agg in ("min", "max") for v in lookup.values)
@@ -301,32 +357,29 @@ def _sweep(
         j = windows.index(v.over_us)
         x = None if v.column is None else _v(r, cols, v)
         if v.agg == "count":
-            cnt = "1" if x is None else f"CASE WHEN {x} IS NULL THEN 0 ELSE 1 END"
-            outs.append(f"CAST(coalesce({running(f'n{i}', cnt, j)}, 0) AS BIGINT)")
-        elif v.agg == "sum":
+            outs.append(count(x, j))
+        elif v.agg in ("sum", "mean"):
             assert x is not None
             xv = f"CAST({x} AS BIGINT)" if v.integer else x
-            total = running(f"s{i}", f"coalesce({xv}, 0)", j)
-            if v.integer:
+            total = running(f"coalesce({xv}, 0)", j)  # shared by sum and mean
+            if v.agg == "mean":
+                nonnull = count(x, j)
+                outs.append(f"CASE WHEN {nonnull} > 0 THEN CAST({total} AS DOUBLE) / {nonnull} END")
+            elif v.integer:
                 outs.append(f"CAST(coalesce({total}, 0) AS BIGINT)")
             else:
                 # a float running sum can leave 1e-13 behind when every value has left the
                 # window: an empty window is exactly 0, decided by the exact running count
-                nonnull = running(f"c{i}", f"CASE WHEN {x} IS NULL THEN 0 ELSE 1 END", j)
-                outs.append(f"CASE WHEN coalesce({nonnull}, 0) = 0 THEN 0.0 ELSE {total} END")
-        elif v.agg in ("mean", "std"):
+                outs.append(f"CASE WHEN {count(x, j)} = 0 THEN 0.0 ELSE {total} END")
+        elif v.agg == "std":
             assert x is not None
-            cnt_sum = running(f"n{i}", f"CASE WHEN {x} IS NULL THEN 0 ELSE 1 END", j)
-            if v.agg == "mean":
-                s1 = running(f"s{i}", f"coalesce(CAST({x} AS DOUBLE), 0)", j)
-                outs.append(f"CASE WHEN {cnt_sum} > 0 THEN {s1} / {cnt_sum} END")
-            else:
-                c = n("c", cols.index(v.column))
-                d = f"coalesce(CAST({x} AS DOUBLE) - {c}, 0)"
-                s1 = running(f"d{i}", d, j)
-                s2 = running(f"q{i}", f"{d} * {d}", j)
-                var = f"greatest(({s2} - {s1} * {s1} / {cnt_sum}) / ({cnt_sum} - 1), 0)"
-                outs.append(f"CASE WHEN {cnt_sum} > 1 THEN sqrt({var}) END")
+            cnt_sum = count(x, j)
+            c = n("c", cols.index(v.column))
+            d = f"coalesce(CAST({x} AS DOUBLE) - {c}, 0)"
+            s1 = running(d, j)
+            s2 = running(f"{d} * {d}", j)
+            var = f"greatest(({s2} - {s1} * {s1} / {cnt_sum}) / ({cnt_sum} - 1), 0)"
+            outs.append(f"CASE WHEN {cnt_sum} > 1 THEN sqrt({var}) END")
         elif v.agg == "count_distinct":
             sums[f"u{i}"] = (
                 f"sum(CASE WHEN {n.tag} = {1000 + i} THEN 1 "

@@ -134,6 +134,37 @@ def test_input_order_of_parquet_files_breaks_ties(layout: str, tmp_path: Any) ->
         assert_frames_match(actual, expected, context=f"{layout}, config {config}")
 
 
+@pytest.mark.parametrize("column", ["__aj_pos", "file_row_number"])
+@pytest.mark.parametrize("kind", ["frame", "parquet"])
+def test_a_column_named_like_the_position_does_not_break_ties(
+    column: str, kind: str, tmp_path: Any
+) -> None:
+    """A feature table with its own column named like the engine's position (or Parquet's
+    virtual row number) falls back to numbering rows in the query; the tie-break still holds."""
+    user = aj.Entity("user", keys=["user_id"])
+    spec = aj.TrainingSetSpec(
+        labels=aj.EventTable("labels", time="t", entities=[user]),
+        features=[aj.Latest(aj.EventTable("rows", time="s", entities=[user]), ["v"])],
+    )
+    at = pd.Timestamp("2024-01-15")
+    labels = pd.DataFrame({"user_id": [1, 2], "t": [at + pd.Timedelta("1h")] * 2})
+    rows = pd.DataFrame(
+        {
+            "user_id": [1, 1, 1, 2, 2],
+            "s": [at] * 5,
+            "v": [10, 11, 12, 20, 21],
+            column: [9, 8, 7, 6, 5],  # decreasing: would reverse the order if used as one
+        }
+    )
+    data: dict[str, object] = {"labels": labels, "rows": rows}
+    if kind == "parquet":
+        rows.to_parquet(tmp_path / "rows.parquet")
+        data["rows"] = str(tmp_path / "rows.parquet")
+    got = aj.build(spec, data=data).to_pandas()
+    assert got["v"].tolist() == [12, 21]
+    assert_frames_match(got, oracle_build(spec, {"labels": labels, "rows": rows}))
+
+
 def test_nanosecond_times_are_truncated_to_microseconds() -> None:
     # README: times compare at microsecond precision, nanosecond inputs truncated. The label
     # at 00:00:00.000000500 truncates to 00:00:00, the row's own instant, so strict visibility

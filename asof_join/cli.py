@@ -68,7 +68,9 @@ def _parser() -> argparse.ArgumentParser:
     build.set_defaults(run=_build)
 
     sql = sub.add_parser(
-        "sql", help="print the SQL a spec compiles to (reads the tables' schemas, not their rows)"
+        "sql",
+        help="print the SQL a spec compiles to (reads the schemas and checks the time columns "
+        "for nulls; runs no join)",
     )
     sql.add_argument("spec", metavar="SPEC", help="YAML or JSON spec file")
     sql.add_argument("--engine", choices=["duckdb", "spark"], default="duckdb")
@@ -187,7 +189,8 @@ def _build(args: argparse.Namespace) -> int:
 def _sql(args: argparse.Namespace) -> int:
     spec = aj.load_spec(args.spec)
     spark = _spark_session() if args.engine == "spark" else None
-    # build() is lazy: it reads schemas and checks inputs; nothing runs until the result is read.
+    # build() is lazy: it reads schemas, checks inputs and counts null times; the joins run
+    # only when the result is read, so printing the SQL runs none.
     train = aj.build(spec, data=_bindings(spec, args.data), engine=args.engine, spark=spark)
     print(train.sql)
     return EXIT_OK

@@ -76,23 +76,38 @@ def test_hostile_names_end_to_end() -> None:
     assert out["n dist; select"].tolist() == [1, 0, 0]
 
 
-def test_readable_sql_header_stays_in_comments(tmp_path: Path) -> None:
-    """The readable SQL names each view's source in comment lines; a table name or path with
-    a line break cannot end the comment and start a statement."""
+def test_readable_sql_is_a_script_that_runs(tmp_path: Path) -> None:
+    """The readable SQL runs in a fresh DuckDB once the frames its comments name are
+    registered, and gives build()'s rows. A line break in a table name stays inside its
+    comment (a repr); a quote and a line break in a path stay inside a string literal."""
+    import duckdb
+    import numpy as np
+    import pyarrow as pa
+
     who = aj.Entity("c", keys=["k"])
     name = "l\nDROP TABLE x; --"
     labels = aj.EventTable(name, time="t", entities=[who])
     src = aj.EventTable("s", time="t", entities=[who])
-    spec = aj.TrainingSetSpec(labels=labels, features=[aj.Latest(src, ["v"])])
-    frame = pd.DataFrame({"k": [1], "t": pd.to_datetime(["2024-01-02"]), "v": [1.0]})
-    folder = tmp_path / "a\nSELECT 1;"
+    spec = aj.TrainingSetSpec(
+        labels=labels,
+        features=[aj.Latest(src, ["v"]), aj.Trailing(src, "v", "sum", over="3d", name="v3")],
+    )
+    times = pd.to_datetime(["2024-01-01", "2024-01-01", "2024-01-02"])
+    rows = pd.DataFrame({"k": [1, 1, 2], "t": times, "v": [1.0, 2.0, 4.0]})
+    lab = pd.DataFrame({"k": [1, 2, 3], "t": pd.to_datetime(["2024-01-03"] * 3)})
+    folder = tmp_path / "a'\nSELECT 1;"
     folder.mkdir()
-    frame.to_parquet(folder / "s.parquet")
-    ts = aj.build(spec, data={name: frame[["k", "t"]], "s": str(folder / "s.parquet")})
-    lines = ts.sql.splitlines()
-    header = lines[: lines.index(next(x for x in lines if x.startswith("WITH")))]
-    assert len(header) == 4 and all(x.startswith("-- ") for x in header)
-    assert "file_row_number" in header[3] and "row position" in header[1]
+    rows.to_parquet(folder / "s.parquet")
+    ts = aj.build(spec, data={name: lab, "s": str(folder / "s.parquet")})
+    script = ts.sql
+    assert f"-- {quote_ident('aj_src_0')}: table {name!r}" in script
+    con = duckdb.connect()
+    table = pa.Table.from_pandas(lab, preserve_index=False)
+    con.register("aj_src_0", table)
+    con.register("aj_pos_0", table.append_column("__aj_pos", pa.array(np.arange(3))))
+    got = con.sql(script).to_arrow_table()
+    assert got.equals(ts.to_arrow())
+    assert got.column("v").to_pylist() == [2.0, 4.0, None]
 
 
 def test_values_are_bound_not_pasted() -> None:

@@ -129,20 +129,31 @@ class DuckDBEngine:
         return schemas
 
     def _define(self, name: str, view: str, obj: object) -> None:
-        """Comment lines for readable SQL: what each registered view holds (reprs: one line)."""
+        """Readable SQL's preamble for a table: CREATE VIEW statements for a file (so the
+        script runs in the duckdb shell), or a comment naming the frame to register."""
+        q = quote_ident
         if isinstance(obj, (str, os.PathLike)):
-            what = f"{os.fspath(obj)!r}"
-        else:
+            path = os.fspath(obj)
+            reader = "read_csv" if path.lower().endswith(_CSV) else "read_parquet"
+            scan = f"{reader}({literal(path)})"
+            lines = [
+                f"-- table {name!r}",
+                f"CREATE OR REPLACE TEMP VIEW {q(view)} AS SELECT * FROM {scan};",
+            ]
+            if name in self.positioned:
+                lines.append(
+                    f"CREATE OR REPLACE TEMP VIEW {q(self.positioned[name])} AS "
+                    f"SELECT *, file_row_number AS {q(POSITION)} FROM {scan};"
+                )
+        else:  # reprs: a line break in a name cannot end the comment
             rows = self._frames[name].num_rows if name in self._frames else "?"
             kind = f"{type(obj).__module__.split('.')[0]} {type(obj).__name__}"
-            what = f"a {kind} ({rows} rows)"
-        lines = [f"-- {quote_ident(view)}: table {name!r}, {what}"]
-        if name in self.positioned:
-            how = "file_row_number" if isinstance(obj, (str, os.PathLike)) else "row position"
-            lines.append(
-                f"-- {quote_ident(self.positioned[name])}: the same rows with "
-                f"{quote_ident(POSITION)} = {how}"
-            )
+            lines = [f"-- {q(view)}: table {name!r}, a {kind} ({rows} rows): register it"]
+            if name in self.positioned:
+                lines.append(
+                    f"-- {q(self.positioned[name])}: the same rows with {q(POSITION)} = "
+                    "row position (0, 1, ...)"
+                )
         self.definitions[name] = lines
 
     def _position(self, name: str, view: str, obj: object, schema: pa.Schema) -> None:
@@ -312,11 +323,17 @@ class DuckDBResult:
         self._table: pa.Table | None = None
 
     def readable_sql(self) -> str:
-        """The SQL with parameters written inline, for reading (the run binds them)."""
+        """A script for the duckdb shell: settings, the views of file-bound tables (frames are
+        named in comments), then the query with parameters written inline (the run binds
+        them)."""
         from .sql import Params
 
-        head = [line for name in self.plan.tables for line in self.engine.definitions[name]]
-        return "\n".join([*head, Params(dict(self.params)).inline(self.sql)])
+        head = [
+            "SET TimeZone = 'UTC';",
+            "SET asof_loop_join_threshold = 0;",
+            *(line for name in self.plan.tables for line in self.engine.definitions[name]),
+        ]
+        return "\n".join([*head, Params(dict(self.params)).inline(self.sql) + ";"])
 
     def relation(self) -> duckdb.DuckDBPyRelation:
         return self.engine.con.sql(self.sql, params=self.params)

@@ -39,8 +39,8 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 
+from .audit_labels import LabelChecks
 from .audit_report import (
     _RULE_ORDER,
     ABS_TOLERANCE,
@@ -57,10 +57,10 @@ from .audit_report import (
     Rule,
     Severity,
 )
+from .audit_sources import SourceChecks
 from .audit_sql import (
     _AUD,
     _AWARE,
-    _NUMERIC,
     _POS,
     _bin_sql,
     _bins,
@@ -72,7 +72,6 @@ from .audit_sql import (
     _filled,
     _micros_sql,
     _micros_to_py,
-    _params,
     _rows,
     _unbounded,
 )
@@ -315,7 +314,7 @@ class _Checked:
     charted: bool = False
 
 
-class _Auditor:
+class _Auditor(SourceChecks, LabelChecks):
     """Runs the rules over one frame in one DuckDB connection."""
 
     def __init__(
@@ -1079,293 +1078,3 @@ class _Auditor:
         )
 
     # -- source rules ----------------------------------------------------------------------
-
-    def _check_sources(self) -> None:
-        if self.plan is None:
-            return
-        seen_tables: set[str] = set()
-        for lookup in self.plan.lookups:
-            if lookup.table not in seen_tables:
-                seen_tables.add(lookup.table)
-                if lookup.known is not None:
-                    self._known_before_valid(lookup)
-            if isinstance(lookup, LatestLookup):
-                # one check per column: several features may read it (e.g. with other max_age)
-                readers: dict[str, list[str]] = {}
-                for value in lookup.values:
-                    readers.setdefault(value.column, []).append(value.output)
-                for column, outputs in readers.items():
-                    self._ambiguous(lookup, column, outputs)
-
-    def _known_before_valid(self, lookup: LatestLookup | TrailingLookup) -> None:
-        assert lookup.known is not None
-        types = self.source_types[lookup.table]
-        p = Params()
-        s = self._us(lookup.valid.column, types, p, lookup.valid.zone)
-        k = self._us(lookup.known.column, types, p, lookup.known.zone)
-        view = q(self.sources[lookup.table])
-        keys = [q(c) for c in lookup.table_keys]
-        # a cheap count first: positions need an ordered scan
-        if not self._scalar_rows(f"SELECT count(*) FROM {view} WHERE {k} < {s}", p)[0][0]:
-            return
-        found = self._fetch(
-            f"SELECT src_pos, {', '.join(keys)}, {q(lookup.valid.column)} AS valid_time, "
-            f"{q(lookup.known.column)} AS known_at FROM (SELECT row_number() OVER () - 1 AS "
-            f"src_pos, * FROM {view}) WHERE {k} < {s} ORDER BY src_pos",
-            p,
-        )
-        if found.num_rows == 0:
-            return
-        pos = found.column("src_pos").to_numpy()
-        examples = self._source_examples(found, lookup.table_keys, ["valid_time", "known_at"])
-        self._add(
-            Rule.KNOWN_BEFORE_VALID,
-            None,
-            pos,
-            f"{found.num_rows:,} rows of table {lookup.table!r} have {lookup.known.column!r} "
-            f"(known time) before {lookup.valid.column!r} (valid time); their known time is "
-            "taken as the valid time",
-            examples,
-            table=lookup.table,
-        )
-
-    def _ambiguous(self, lookup: LatestLookup, column: str, outputs: list[str]) -> None:
-        keys = [f'"__aj_k{j}"' for j in range(len(lookup.table_keys))]
-        group = ", ".join([*keys, "s", "k"])
-        on = " AND ".join(f"r.{c} = g.{c}" for c in [*keys, "s", "k"])
-        ambiguous = (
-            f"SELECT {group} FROM r GROUP BY {group} HAVING count(*) > 1 AND "
-            "(min(v0) <> max(v0) OR (count(v0) > 0 AND count(v0) < count(*)))"
-        )
-        # a cheap count first: positions need an ordered scan
-        p = Params()
-        rows = self._rows_sql(lookup, [column], p)
-        count = f"WITH r AS ({rows}) SELECT count(*) FROM ({ambiguous})"
-        if not self._scalar_rows(count, p)[0][0]:
-            return
-        p = Params()
-        rows = self._rows_sql(lookup, [column], p, positions=True)
-        found = self._fetch(
-            f"""
-            WITH r AS ({rows}), g AS ({ambiguous})
-            SELECT r.src_pos, r.v0 AS value, r.s, r.k,
-                   dense_rank() OVER (ORDER BY {", ".join(f"r.{c}" for c in [*keys, "s", "k"])})
-                       AS grp
-            FROM r JOIN g ON {on} ORDER BY r.src_pos
-            """,
-            p,
-        )
-        if found.num_rows == 0:
-            return
-        pos = found.column("src_pos").to_numpy()
-        groups = int(pc.max(found.column("grp")).as_py())
-        raw = self._fetch(
-            f"SELECT {', '.join(q(c) for c in lookup.table_keys)}, {q(lookup.valid.column)} AS "
-            f"valid_time FROM (SELECT row_number() OVER () - 1 AS src_pos, * FROM "
-            f"{q(self.sources[lookup.table])}) WHERE list_contains($pos, src_pos) ORDER BY src_pos",
-            _params(pos=[int(x) for x in pos[: self.max_examples]]),
-        )
-        examples = []
-        for j, row in enumerate(raw.to_pylist()):
-            examples.append(
-                {
-                    "position": int(pos[j]),
-                    "key": {c: row[c] for c in lookup.table_keys},
-                    "valid_time": row["valid_time"],
-                    "known_time": _micros_to_py(found.column("k").slice(j, 1))[0],
-                    "value": found.column("value")[j].as_py(),
-                    "group": int(found.column("grp")[j].as_py()),
-                }
-            )
-        self._add(
-            Rule.AMBIGUOUS_SOURCE_ROWS,
-            None,
-            pos,
-            f"{found.num_rows:,} rows of table {lookup.table!r} fall in {groups:,} groups with "
-            f"equal key, valid and known time but different {column!r} values (read by "
-            f"{', '.join(map(repr, outputs))}); the build keeps the last in input order, so "
-            "the result depends on load order",
-            examples,
-            table=lookup.table,
-            details={"groups": groups, "column": column, "features": outputs},
-        )
-
-    def _source_examples(
-        self, found: pa.Table, keys: Sequence[str], columns: Sequence[str]
-    ) -> list[dict[str, Any]]:
-        examples = []
-        for row in found.slice(0, self.max_examples).to_pylist():
-            ex: dict[str, Any] = {"position": int(row["src_pos"])}
-            ex["key"] = {c: row[c] for c in keys}
-            ex.update({c: row[c] for c in columns})
-            examples.append(ex)
-        return examples
-
-    # -- label proxy -----------------------------------------------------------------------
-
-    def _check_label_proxy(self) -> None:
-        if self.label is None:
-            return
-        lab = q(self.label)
-        values = [
-            r[0]
-            for r in self._scalar_rows(
-                f"SELECT DISTINCT {lab} FROM {q(_AUD)} WHERE {lab} IS NOT NULL LIMIT 3", Params()
-            )
-        ]
-        if len(values) != 2:
-            self.notes.append(
-                f"label_proxy skipped: label {self.label!r} has "
-                f"{'more than 2' if len(values) > 2 else len(values)} distinct values; the rule "
-                "needs a binary label"
-            )
-            return
-        try:
-            positive = sorted(values)[1]
-        except TypeError:
-            positive = sorted(values, key=str)[1]
-        label_type = self.types[self.label]
-        for out in self.outputs:
-            f = q(out.name)
-            f_type = self.types[out.name]
-            eq = self._eq(f, lab, f_type, label_type)
-            p = _params(pos=positive)
-            row = self._scalar_rows(
-                f"SELECT count(*), count(*) FILTER (WHERE {eq}), "
-                f"count(*) FILTER (WHERE {f} IS NOT NULL AND {lab} = $pos), "
-                f"count(*) FILTER (WHERE {f} IS NOT NULL AND {lab} <> $pos) "
-                f"FROM {q(_AUD)} WHERE {lab} IS NOT NULL",
-                p,
-            )[0]
-            labelled, equal, n_pos, n_neg = (int(x) for x in row)
-            if min(n_pos, n_neg) < PROXY_MIN_CLASS_ROWS:
-                continue
-            measure: dict[str, Any] | None = None
-            if labelled and equal / labelled >= PROXY_EQUAL_SHARE:
-                measure = {
-                    "measure": "equal_share",
-                    "value": equal / labelled,
-                    "threshold": PROXY_EQUAL_SHARE,
-                }
-                text = (
-                    f"equals the label {self.label!r} on {equal / labelled:.2%} of {labelled:,} "
-                    f"labelled rows (threshold {PROXY_EQUAL_SHARE:.0%})"
-                )
-                measured = labelled
-            elif _family(f_type) in _NUMERIC and (roc_auc_score := self._roc_auc()) is not None:
-                xy = self._fetch(
-                    f"SELECT CAST({f} AS DOUBLE) AS x, {lab} = $pos AS y FROM {q(_AUD)} "
-                    f"WHERE {lab} IS NOT NULL AND {f} IS NOT NULL "
-                    f"AND NOT isnan(CAST({f} AS DOUBLE))",
-                    p,
-                )
-                y = xy.column("y").to_numpy(zero_copy_only=False).astype(bool)
-                if min(int(y.sum()), int((~y).sum())) < PROXY_MIN_CLASS_ROWS:
-                    continue
-                x = xy.column("x").to_numpy(zero_copy_only=False)
-                auc = float(roc_auc_score(y, x))
-                if 1 - PROXY_AUC < auc < PROXY_AUC:
-                    continue
-                measure = {"measure": "roc_auc", "value": auc, "threshold": PROXY_AUC}
-                text = (
-                    f"separates the label {self.label!r} almost perfectly: ROC AUC {auc:.4f} "
-                    f"over {len(y):,} rows (threshold >= {PROXY_AUC} or <= "
-                    f"{1 - PROXY_AUC:.2f})"
-                )
-                measured = len(y)
-            if measure is None:
-                continue
-            sample = self._fetch(
-                f"SELECT {q(_POS)} AS pos, {lab} AS label, {f} AS value FROM {q(_AUD)} "
-                f"WHERE {lab} IS NOT NULL AND {f} IS NOT NULL ORDER BY {q(_POS)} "
-                f"LIMIT {int(self.max_examples)}",
-                Params(),
-            ).to_pylist()
-            examples = [
-                {"position": r["pos"], "label": r["label"], "value": r["value"]} for r in sample
-            ]
-            self._add(
-                Rule.LABEL_PROXY,
-                out,
-                np.empty(0, dtype=np.int64),
-                f"{out.name!r} {text}; a single feature this predictive is usually derived from "
-                "the label",
-                examples,
-                rows=measured,
-                details=measure,
-            )
-
-    def _roc_auc(self) -> Any:
-        """sklearn's roc_auc_score, imported on first use; None (and a note) when missing."""
-        if self._auc is None:
-            try:
-                from sklearn.metrics import roc_auc_score
-            except ImportError:
-                self._auc = False
-                self.notes.append(
-                    "label_proxy: scikit-learn is not installed, so the ROC AUC measure was "
-                    "skipped (pip install scikit-learn); the equality measure ran"
-                )
-            else:
-                self._auc = roc_auc_score
-        return self._auc or None
-
-    # -- splits ----------------------------------------------------------------------------
-
-    def _check_splits(self) -> None:
-        if self.split is None:
-            return
-        from .splits import GAP
-
-        p = Params()
-        t = self._t(p)
-        sc = f"CAST({q(self.split)} AS VARCHAR)"
-        gap_name = p.add(GAP)
-        stats = self._scalar_rows(
-            f"SELECT {sc} AS name, min({t}), max({t}) FROM {q(_AUD)} "
-            f"WHERE {q(self.split)} IS NOT NULL AND {sc} <> {gap_name} "
-            f"AND {q(self.spec.labels.time)} IS NOT NULL GROUP BY name",
-            p,
-        )
-        if len(stats) < 2:
-            return
-        first = {name: lo for name, lo, _ in stats}
-        last = {name: hi for name, _, hi in stats}
-        listed = [n for n in self.split_names if n in first]
-        others = sorted((n for n in first if n not in self.split_names), key=lambda n: first[n])
-        if others:
-            self.notes.append(
-                f"split values {others} are not in split_names; ordered by their first label time"
-            )
-        order = listed + others
-        gap_text = format_duration(dt.timedelta(microseconds=self.gap_us))
-        for a_index, earlier in enumerate(order):
-            for later in order[a_index + 1 :]:
-                bound = last[earlier] + self.gap_us
-                lp = Params()
-                lt = self._t(lp)
-                name_param = lp.add(later)
-                bound_param = lp.add(int(bound))
-                found = self._fetch(
-                    f"SELECT {q(_POS)} AS pos FROM {q(_AUD)} WHERE {sc} = {name_param} "
-                    f"AND {lt} <= CAST({bound_param} AS BIGINT) ORDER BY pos",
-                    lp,
-                )
-                if found.num_rows == 0:
-                    continue
-                pos = found.column("pos").to_numpy()
-                end = _micros_to_py(pa.array([last[earlier]], type=pa.int64()))[0]
-                examples = self._examples(None, pos, {})
-                for ex in examples:
-                    ex["split"] = later
-                    ex["earlier_split"] = earlier
-                    ex["earlier_split_end"] = end
-                self._add(
-                    Rule.SPLIT_OVERLAP,
-                    None,
-                    pos,
-                    f"{_rows(found.num_rows)} of split {later!r}: label time at or before the "
-                    f"end of {earlier!r} ({end}) plus the gap {gap_text}",
-                    examples,
-                    details={"earlier": earlier, "later": later, "gap": gap_text},
-                )

@@ -2,13 +2,21 @@
 
 from __future__ import annotations
 
+import glob
 from enum import Enum
+from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pyarrow as pa
 
-from .errors import ColumnNotFoundError, InputError, NullTimeError, TimeTypeError
+from .errors import (
+    ColumnNotFoundError,
+    InputError,
+    NullTimeError,
+    TimeTypeError,
+    UnreadableInputError,
+)
 
 if TYPE_CHECKING:
     from collections.abc import Sequence
@@ -118,6 +126,25 @@ def time_micros(array: pa.Array, what: str, column: str, role: str) -> tuple[np.
     return values, typ.tz is not None
 
 
+def check_local_path(name: str, path: str, *, directories: bool = False) -> None:
+    """Fail before reading when a local path or glob matches nothing (or, unless
+    `directories`, something that is not a file); remote URLs are left to the reader."""
+    if "://" in path:
+        return
+    matches = glob.glob(path) if glob.has_magic(path) else [path]
+    found = Path.exists if directories else Path.is_file
+    missing = path if not matches else next((m for m in matches if not found(Path(m))), None)
+    if missing is None:
+        return
+    msg = (
+        f"table {name!r}: cannot read {missing!r} (no such file or no match for the glob); "
+        "fix the path in data= or the spec's path:"
+    )
+    err = UnreadableInputError(msg)
+    err.table, err.value = name, path
+    raise err
+
+
 def null_positions(array: pa.Array) -> np.ndarray:
     """0-based positions of the nulls in ``array``."""
     if array.null_count == 0:
@@ -125,15 +152,22 @@ def null_positions(array: pa.Array) -> np.ndarray:
     return np.flatnonzero(array.is_null().to_numpy(zero_copy_only=False))
 
 
-def null_time_error(what: str, column: str, role: str, positions: np.ndarray, fix: str) -> None:
-    """Raise NullTimeError naming the count and the first positions of null times."""
+def null_values_error(
+    what: str,
+    column: str,
+    role: str,
+    positions: np.ndarray,
+    fix: str,
+    error: type[InputError] = NullTimeError,
+) -> None:
+    """Raise `error` (NullTimeError for times) naming the count and first positions of nulls."""
     first = ", ".join(str(int(p)) for p in positions[:5])
     more = ", ..." if len(positions) > 5 else ""
     msg = (
         f"{what} column {column!r} (its {role}) has {len(positions)} null value(s), at rows "
         f"[{first}{more}] (0-based); {fix}"
     )
-    err = NullTimeError(msg)
+    err = error(msg)
     err.table, err.column, err.value = what, column, len(positions)
     raise err
 

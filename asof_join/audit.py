@@ -84,6 +84,7 @@ from .errors import (
     UnknownTableError,
     UnreadableInputError,
 )
+from .inputs import check_known_tables
 from .plan import LatestLookup
 from .spec import Latest, TrainingSetSpec
 
@@ -475,15 +476,7 @@ class _Auditor(SourceChecks, LabelChecks):
     def _bind_sources(self) -> None:
         spec = self.spec
         tables = spec.tables()
-        unknown = [k for k in self.data if k not in tables]
-        if unknown:
-            msg = (
-                f"data= binds {unknown}, which the spec does not declare; declared tables: "
-                f"{list(tables)}. Fix the name in data= or the spec"
-            )
-            err = UnknownTableError(msg)
-            err.table = unknown[0]
-            raise err
+        check_known_tables(spec, self.data)
         label_name = spec.labels.name
         feature_tables = list(dict.fromkeys(f.table.name for f in spec.features))
         if label_name in self.data and label_name not in feature_tables:

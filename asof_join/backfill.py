@@ -302,7 +302,7 @@ def _entities_of(feat: Feature) -> list[str]:
     return [r.entity for r in refs if feat.entity is None or r.entity == feat.entity]
 
 
-def _materialize(obj: object) -> object:
+def _as_arrow(obj: object) -> object:
     """Frames and relations as Arrow tables (converted once, not once per chunk); paths as is."""
     import pyarrow as pa
 
@@ -328,7 +328,7 @@ def _inputs(target: _Target, data: Mapping[str, object] | None) -> dict[str, obj
     out: dict[str, object] = {}
     for name, table in tables.items():
         if name in data:
-            out[name] = _materialize(data[name])
+            out[name] = _as_arrow(data[name])
         elif table.path is not None:
             out[name] = table.path
     missing = [n for n in tables if n not in out]
@@ -768,7 +768,7 @@ class _Session:
         from .engines.duckdb import DuckDBEngine
         from .engines.sql import quote_ident as q
 
-        obj = _materialize(population)
+        obj = _as_arrow(population)
         if isinstance(obj, str):
             probe = DuckDBEngine()
             schema = probe.bind({"population": obj})["population"]

@@ -29,10 +29,9 @@ class CheckedInputs:
     integer_columns: frozenset[tuple[str, str]] = frozenset()
 
 
-def check_bindings(spec: TrainingSetSpec, data: Mapping[str, object] | None) -> None:
-    """Every declared table has data (or a path); data= names nothing undeclared."""
+def check_known_tables(spec: TrainingSetSpec, data: Mapping[str, object]) -> None:
+    """data= names only tables the spec declares (UnknownTableError naming the first)."""
     tables = spec.tables()
-    data = data or {}
     unknown = [k for k in data if k not in tables]
     if unknown:
         msg = (
@@ -42,6 +41,13 @@ def check_bindings(spec: TrainingSetSpec, data: Mapping[str, object] | None) -> 
         err = UnknownTableError(msg)
         err.table = unknown[0]
         raise err
+
+
+def check_bindings(spec: TrainingSetSpec, data: Mapping[str, object] | None) -> None:
+    """Every declared table has data (or a path); data= names nothing undeclared."""
+    tables = spec.tables()
+    data = data or {}
+    check_known_tables(spec, data)
     missing = [n for n, t in tables.items() if n not in data and t.path is None]
     if missing:
         msg = (

@@ -17,7 +17,7 @@ from ._frames import (
     frame_kind,
     from_arrow,
     null_positions,
-    null_time_error,
+    null_values_error,
     require_columns,
     time_micros,
     to_arrow,
@@ -178,7 +178,7 @@ def sample_negatives(
     i_time_arr = column_to_arrow(items, items_kind, item_time)
     i_nulls = null_positions(i_time_arr)
     if len(i_nulls):
-        null_time_error(
+        null_values_error(
             "items", item_time, "item_time", i_nulls, "drop those rows or fill their valid time"
         )
     i_time, i_aware = time_micros(i_time_arr, "items", item_time, "item_time")
@@ -277,7 +277,7 @@ def _times(table: pa.Table, what: str, column: str) -> tuple[np.ndarray, bool]:
     array = column_to_arrow(table, FrameKind.ARROW, column)
     nulls = null_positions(array)
     if len(nulls):
-        null_time_error(what, column, "time", nulls, "drop those rows first")
+        null_values_error(what, column, "time", nulls, "drop those rows first")
     return time_micros(array, what, column, "time")
 
 
@@ -298,14 +298,7 @@ def _same_zone_kind(a: tuple[str, str, bool], b: tuple[str, str, bool]) -> None:
 def _no_nulls(array: pa.Array, what: str, column: str, role: str) -> None:
     nulls = null_positions(array)
     if len(nulls):
-        first = ", ".join(str(int(p)) for p in nulls[:5])
-        msg = (
-            f"{what} column {column!r} (its {role}) has {len(nulls)} null value(s), at rows "
-            f"[{first}{', ...' if len(nulls) > 5 else ''}] (0-based); drop or fill them first"
-        )
-        err = InputError(msg)
-        err.table, err.column, err.value = what, column, len(nulls)
-        raise err
+        null_values_error(what, column, role, nulls, "drop or fill them first", error=InputError)
 
 
 def _same_key_family(a: tuple[str, pa.Array], b: tuple[str, pa.Array], column: str) -> None:

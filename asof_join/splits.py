@@ -16,7 +16,7 @@ from ._frames import (
     frame_kind,
     instant_micros,
     null_positions,
-    null_time_error,
+    null_values_error,
     require_columns,
     time_micros,
 )
@@ -145,7 +145,7 @@ def split_by_time(
 
     nulls = null_positions(array)
     if len(nulls) and null_times == "error":
-        null_time_error(
+        null_values_error(
             what, time, "time", nulls, "drop those rows or pass null_times='keep' (null split)"
         )
 

@@ -5,13 +5,13 @@ from __future__ import annotations
 import glob
 import os
 from collections.abc import Mapping
-from pathlib import Path
 from typing import Any
 
 import duckdb
 import numpy as np
 import pyarrow as pa
 
+from .._frames import check_local_path
 from ..errors import InputError, NullTimeError, SpecError, UnreadableInputError
 from ..plan import Plan
 from .render import POSITION, SqlRenderer
@@ -230,17 +230,7 @@ class DuckDBEngine:
         self._frames[name] = table
 
     def _register_path(self, name: str, view: str, path: str) -> None:
-        if "://" not in path:
-            matches = glob.glob(path) if glob.has_magic(path) else [path]
-            if not matches or not all(Path(m).is_file() for m in matches):
-                missing = path if not matches else next(m for m in matches if not Path(m).is_file())
-                msg = (
-                    f"table {name!r}: cannot read {missing!r} (no such file or no match for the "
-                    "glob); fix the path in data= or the spec's path:"
-                )
-                err = UnreadableInputError(msg)
-                err.table, err.value = name, path
-                raise err
+        check_local_path(name, path)
         lower = path.lower()
         try:
             is_csv = lower.endswith(_CSV)

@@ -15,6 +15,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from .._frames import check_local_path
 from ..errors import InputError, NullTimeError, UnreadableInputError, UnsupportedByEngineError
 from ..plan import Plan
 from .render import POSITION, SqlRenderer
@@ -217,7 +218,7 @@ class SparkEngine:
         return frame
 
     def _from_path(self, name: str, view: str, path: str) -> DataFrame:
-        _check_local_path(name, path)
+        check_local_path(name, path, directories=True)
         is_csv = path.lower().endswith(_CSV)
         try:
             if is_csv:
@@ -478,21 +479,6 @@ def _looks_like_table(text: str) -> bool:
         or glob.has_magic(text)
         or text.lower().endswith(_PARQUET + _CSV)
     )
-
-
-def _check_local_path(name: str, path: str) -> None:
-    if "://" in path:
-        return  # remote file systems: Spark reports
-    matches = glob.glob(path) if glob.has_magic(path) else [path]
-    if not matches or not all(Path(m).exists() for m in matches):
-        missing = path if not matches else next(m for m in matches if not Path(m).exists())
-        msg = (
-            f"table {name!r}: cannot read {missing!r} (no such file or no match for the glob); "
-            "fix the path in data= or the spec's path:"
-        )
-        err = UnreadableInputError(msg)
-        err.table, err.value = name, path
-        raise err
 
 
 def _path_order(uri: str) -> str:

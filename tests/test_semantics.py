@@ -16,6 +16,7 @@ from tests.oracle import oracle_build
 from tests.strategies import Case, NumpyDraw, build_spec, cases, make_data, make_recipe
 
 aj = pytest.importorskip("asof_join")
+from asof_join.engines.duckdb import DuckDBEngine  # noqa: E402
 
 #: Examples per hypothesis test; raise it for a longer soak: ASOF_JOIN_EXAMPLES=5000 pytest ...
 EXAMPLES = int(os.environ.get("ASOF_JOIN_EXAMPLES", "200"))
@@ -51,6 +52,108 @@ def test_latest_matches_oracle(case: Case, provenance: bool) -> None:
 @given(case=cases(latest=True, trailing=True), provenance=st.booleans())
 def test_trailing_matches_oracle(case: Case, provenance: bool) -> None:
     check_case(case, provenance=provenance)
+
+
+class _UncountedEngine(DuckDBEngine):
+    """DuckDB with every table's row count unknown, as for CSV input: counts pack into
+    64-bit lanes of a HUGEINT instead of the 32-bit lanes of a BIGINT."""
+
+    def _count(self, name: str, view: str, obj: object) -> None:
+        return None
+
+
+@pytest.mark.trailing
+@settings(CASE_SETTINGS, max_examples=max(EXAMPLES // 2, 10))
+@given(case=cases(latest=False, trailing=True))
+def test_trailing_with_wide_count_lanes_matches_oracle(case: Case) -> None:
+    spec, data = case
+    actual = aj.build(spec, data=data, engine=_UncountedEngine()).to_pandas()
+    assert_frames_match(actual, oracle_build(spec, data), context=f"reproducer:\n{case.code()}")
+
+
+@pytest.mark.parametrize("counted", [True, False])
+def test_two_counts_of_a_window_share_one_packed_sum(counted: bool) -> None:
+    """Two counts over one window (rows, and non-null v for count and mean) are one sum:
+    BIGINT lanes when the table's row count is known (a frame), HUGEINT lanes when not."""
+    user = aj.Entity("user", keys=["user_id"])
+    rows_table = aj.EventTable("rows", time="s", entities=[user])
+    spec = aj.TrainingSetSpec(
+        labels=aj.EventTable("labels", time="t", entities=[user]),
+        features=[
+            aj.Trailing(rows_table, None, "count", over="2h", name="n"),
+            aj.Trailing(rows_table, "v", "count", over="2h", name="n_v"),
+            aj.Trailing(rows_table, "v", "mean", over="2h", name="mean_v"),
+        ],
+    )
+    at = pd.Timestamp("2024-01-15")
+    labels = pd.DataFrame(
+        {"user_id": [1, 1, 2, 3], "t": [at + pd.Timedelta(m, "min") for m in (30, 150, 90, 10)]}
+    )
+    rows = pd.DataFrame(
+        {
+            "user_id": [1, 1, 1, 2, 2, 1],
+            "s": [at + pd.Timedelta(m, "min") for m in (0, 20, 29, 60, 89, 120)],
+            "v": [1.0, None, 4.0, 2.0, None, 8.0],
+        }
+    )
+    data = {"labels": labels, "rows": rows}
+    built = aj.build(spec, data=data, engine="duckdb" if counted else _UncountedEngine())
+    sql = built.sql
+    assert sql.count(" OVER w0 AS ") == 2  # the two counts packed in one sum, and sum(v)
+    assert ("4294967296" in sql) is counted and ("HUGEINT" in sql) is not counted
+    got = built.to_pandas()
+    assert got["n"].tolist() == [3, 1, 2, 0]
+    assert got["n_v"].tolist() == [2, 1, 1, 0]
+    assert_frames_match(got, oracle_build(spec, data))
+
+
+@pytest.mark.parametrize("far", [False, True])
+def test_integer_keys_sort_as_int32_only_when_every_row_fits(far: bool) -> None:
+    """A trailing lookup sorts BIGINT keys as INTEGER when all of the table's keys fit; a
+    label key outside that range (TRY_CAST: null) then matches nothing, as it would uncast.
+    With one table key past the range nothing is cast. Both equal the oracle."""
+    user = aj.Entity("user", keys=["user_id"])
+    rows_table = aj.EventTable("rows", time="s", entities=[user])
+    spec = aj.TrainingSetSpec(
+        labels=aj.EventTable("labels", time="t", entities=[user]),
+        features=[
+            aj.Trailing(rows_table, None, "count", over="1d", name="n"),
+            aj.Trailing(rows_table, "v", "sum", over="1d", name="total"),
+        ],
+    )
+    at = pd.Timestamp("2024-01-15")
+    low, high, past = -(2**31), 2**31 - 1, 2**31 + 5
+    keys = [low, high, 5, 5] + ([past] if far else [])
+    rows = pd.DataFrame(
+        {
+            "user_id": np.array(keys, dtype="int64"),
+            "s": [at] * len(keys),
+            "v": np.arange(1.0, len(keys) + 1),
+        }
+    )
+    label_keys = [low, high, 5, past, low - 1, 7]
+    labels = pd.DataFrame(
+        {
+            "user_id": np.array(label_keys, dtype="int64"),
+            "t": [at + pd.Timedelta("1h")] * len(label_keys),
+        }
+    )
+    data = {"labels": labels, "rows": rows}
+    built = aj.build(spec, data=data)
+    assert ('CAST("user_id" AS INTEGER)' in built.sql) is not far
+    got = built.to_pandas()
+    assert got["n"].tolist() == [1, 1, 2, 1 if far else 0, 0, 0]
+    assert_frames_match(got, oracle_build(spec, data))
+
+
+def test_lane_width_follows_the_row_count() -> None:
+    """32-bit lanes only below 2^31 rows: a count then fits a lane with room to spare."""
+    from asof_join.engines.render import SqlRenderer
+    from asof_join.engines.sql import Params
+
+    r = SqlRenderer.for_expressions(Params())
+    r.row_counts = {"small": 2**31 - 1, "large": 2**31}
+    assert [r.lane_bits(t) for t in ("small", "large", "unknown")] == [32, 64, 64]
 
 
 @settings(CASE_SETTINGS, max_examples=max(EXAMPLES // 2, 10))

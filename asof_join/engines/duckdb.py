@@ -13,7 +13,7 @@ import pyarrow as pa
 
 from .._frames import check_local_path
 from ..errors import InputError, NullTimeError, SpecError, UnreadableInputError
-from ..plan import Plan
+from ..plan import Plan, TrailingLookup
 from .render import POSITION, SqlRenderer
 from .sql import literal, quote_ident
 
@@ -108,6 +108,9 @@ class DuckDBEngine:
         self.arrow_schemas: dict[str, pa.Schema] = {}
         self._keep: list[object] = []
         self._frames: dict[str, pa.Table] = {}  # in-memory inputs, as registered
+        # table name -> number of rows, where known without a scan (frames, Parquet footers)
+        self.row_counts: dict[str, int] = {}
+        self._int32: dict[tuple[str, str], bool] = {}  # (table, column) -> values fit INTEGER
         # table name -> SQL comment lines saying what its views hold (for readable SQL)
         self.definitions: dict[str, list[str]] = {}
 
@@ -126,7 +129,17 @@ class DuckDBEngine:
             self.arrow_schemas[name] = original if original is not None else schema
             self._position(name, f"aj_pos_{i}", obj, schema)
             self._define(name, view, obj)
+            self._count(name, view, obj)
         return schemas
+
+    def _count(self, name: str, view: str, obj: object) -> None:
+        """Record the table's row count when it costs no scan: a frame's length, or the sum
+        of Parquet footers (DuckDB answers count(*) from them). CSV stays unknown."""
+        if name in self._frames:
+            self.row_counts[name] = self._frames[name].num_rows
+        elif isinstance(obj, (str, os.PathLike)) and not os.fspath(obj).lower().endswith(_CSV):
+            count = self.fetch(f"SELECT count(*) FROM {quote_ident(view)}")[0][0]
+            self.row_counts[name] = int(count)
 
     def _define(self, name: str, view: str, obj: object) -> None:
         """Readable SQL's preamble for a table: CREATE VIEW statements for a file (so the
@@ -283,8 +296,46 @@ class DuckDBEngine:
 
     # -- rendering and running -------------------------------------------------------------
 
+    def narrow_keys(self, plan: Plan) -> set[tuple[int, int]]:
+        """(step, key index) of trailing lookups whose key can sort as a 32-bit INTEGER.
+
+        A trailing lookup sorts the table's rows and the labels by key and time; a 4-byte key
+        instead of 8 keeps the sort key within 16 bytes, about 4% of a 30-day build at 5M x
+        10M. Only for a wider integer column of the table whose values all fit INTEGER (min and
+        max: Parquet statistics, or a scan of the column), joined to an integer label column,
+        which is read with TRY_CAST: a label key out of range matches no row either way.
+        """
+        narrow: set[tuple[int, int]] = set()
+        labels = self.arrow_schemas[plan.labels.table]
+        for lookup in plan.lookups:
+            if not isinstance(lookup, TrailingLookup):
+                continue
+            table = self.arrow_schemas[lookup.table]
+            pairs = zip(lookup.table_keys, lookup.label_keys, strict=True)
+            for i, (column, label_column) in enumerate(pairs):
+                typ = table.field(column).type
+                wide = (pa.types.is_integer(typ) and typ.bit_width > 32) or typ == pa.uint32()
+                if (
+                    wide
+                    and pa.types.is_integer(labels.field(label_column).type)
+                    and self._fits_int32(lookup.table, column)
+                ):
+                    narrow.add((lookup.step, i))
+        return narrow
+
+    def _fits_int32(self, table: str, column: str) -> bool:
+        if (table, column) not in self._int32:
+            col = quote_ident(column)
+            low, high = self.fetch(
+                f"SELECT min({col}), max({col}) FROM {quote_ident(self.sources[table])}"
+            )[0]
+            self._int32[(table, column)] = low is None or (low >= -(2**31) and high < 2**31)
+        return self._int32[(table, column)]
+
     def render(self, plan: Plan) -> tuple[str, dict[str, object]]:
-        renderer = self.renderer(plan, self.sources, self.positioned)
+        renderer = self.renderer(
+            plan, self.sources, self.positioned, self.row_counts, self.narrow_keys(plan)
+        )
         sql = renderer.render()
         return sql, dict(renderer.params.values)
 

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Collection, Mapping, Sequence
 
 from ..plan import (
     LatestLookup,
@@ -59,12 +59,18 @@ class SqlRenderer:
         plan: Plan,
         sources: Mapping[str, str],
         positioned: Mapping[str, str] | None = None,
+        row_counts: Mapping[str, int] | None = None,
+        narrow_keys: Collection[tuple[int, int]] = (),
     ) -> None:
         self.plan = plan
         self.sources = sources  # table name -> relation name the engine registered
         # table name -> a relation of the same rows with a POSITION column (0-based input
         # position), when the engine can give one cheaply; others number rows in the query
         self.positioned = dict(positioned or {})
+        # table name -> its number of rows, where the engine knows it without a scan
+        self.row_counts = dict(row_counts or {})
+        # (step, key index) of lookups whose key the engine found to fit a 32-bit INTEGER
+        self.narrow_keys = set(narrow_keys)
         # a frame trailing lookup whose result replaces the label relation (see render)
         self.driving_step: int | None = None
         self.params = Params(marker=self.PARAM_MARKER, quote=self.literal)
@@ -78,6 +84,8 @@ class SqlRenderer:
         renderer = cls.__new__(cls)
         renderer.sources = {}
         renderer.positioned = {}
+        renderer.row_counts = {}
+        renderer.narrow_keys = set()
         renderer.driving_step = None
         renderer.params = params
         renderer.ctes = []
@@ -144,6 +152,29 @@ class SqlRenderer:
         if table in self.positioned:
             return self.q(POSITION)
         return "(row_number() OVER () - 1)"
+
+    def key_column(self, lookup: Lookup, index: int, column: str, *, label: bool) -> str:
+        """A lookup's key column, as INTEGER where the engine found the table's values to fit
+        (``narrow_keys``); the label side with TRY_CAST (out of range: null, matching none)."""
+        if (lookup.step, index) not in self.narrow_keys:
+            return self.q(column)
+        return f"{'TRY_CAST' if label else 'CAST'}({self.q(column)} AS INTEGER)"
+
+    def row_type(self) -> str:
+        """SQL type of a label's row number: INTEGER when the labels are known to number fewer
+        than 2^31 (4 bytes less to carry through every sort), else BIGINT."""
+        rows = self.row_counts.get(self.plan.labels.table)
+        return "INTEGER" if rows is not None and rows < 1 << 31 else "BIGINT"
+
+    def lane_bits(self, table: str) -> int:
+        """Width of one lane of a packed count over `table`'s rows (see trailing_sql._Lanes).
+
+        A count over a table's rows never exceeds its row count, so a table known to hold
+        fewer than 2^31 rows packs two counts into one BIGINT (32-bit lanes), which DuckDB
+        sums faster than the 128-bit pair of 64-bit lanes used otherwise.
+        """
+        rows = self.row_counts.get(table)
+        return 32 if rows is not None and rows < 1 << 31 else 64
 
     def last_non_null(self, expr: str) -> str:
         """The window function taking the last non-null value of the frame."""
@@ -295,8 +326,11 @@ class SqlRenderer:
             picked = "".join(f"{self.q(c)}, " for c in lab.keys)
         else:
             picked = "*, "
+        position = self.input_position(lab.table)
+        if self.row_type() != "BIGINT":
+            position = f"CAST({position} AS {self.row_type()})"
         body = (
-            f"SELECT {self.input_position(lab.table)} AS {n.row}, "
+            f"SELECT {position} AS {n.row}, "
             f"{picked}{self.time_expr(lab.time)} AS {n.t}\n"
             f"    FROM {self.numbered_source(lab.table)}"
         )
@@ -312,7 +346,10 @@ class SqlRenderer:
             k = self.time_plus(s, lookup.delay_us)
         else:
             k = s
-        keys = [f"{q(c)} AS {n('k', i)}" for i, c in enumerate(lookup.table_keys)]
+        keys = [
+            f"{self.key_column(lookup, i, c, label=False)} AS {n('k', i)}"
+            for i, c in enumerate(lookup.table_keys)
+        ]
         vals = [
             f"{q(c) if c is not None else 'NULL'} AS {n('v', i)}"
             for i, c in enumerate(value_columns)
@@ -388,7 +425,7 @@ class SqlRenderer:
         union = self.cte(
             f"__aj_lu{lookup.step}",
             f"SELECT {_join(keys)}, {n.at} AS {n.p}, {row_kind} AS {n.kind}, "
-            f"CAST(NULL AS BIGINT) AS {n.row}, {payload} AS {n.pay}\n    FROM {line}\n"
+            f"CAST(NULL AS {self.row_type()}) AS {n.row}, {payload} AS {n.pay}\n    FROM {line}\n"
             f"    UNION ALL\n    SELECT {_join(label_keys)}, {n.t}, {label_kind}, {n.row}, NULL\n"
             f"    FROM {n.labels}\n    WHERE {_join(present, ' AND ')}",
         )

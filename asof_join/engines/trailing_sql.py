@@ -54,7 +54,10 @@ def _keys(r: SqlRenderer, lookup: TrailingLookup) -> list[str]:
 
 
 def _label_keys(r: SqlRenderer, lookup: TrailingLookup) -> list[str]:
-    return [f"{r.q(c)} AS {r.n('k', i)}" for i, c in enumerate(lookup.label_keys)]
+    return [
+        f"{r.key_column(lookup, i, c, label=True)} AS {r.n('k', i)}"
+        for i, c in enumerate(lookup.label_keys)
+    ]
 
 
 def _v(r: SqlRenderer, cols: list[str | None], v: TrailingValue) -> str:
@@ -81,24 +84,25 @@ def _frame(
     shift = lookup.delay_us + (0 if lookup.inclusive else 1)
     vals = [n("v", i) for i in range(len(cols))]
     null_vals = [f"NULL AS {n('v', i)}" for i in range(len(cols))]
+    # the table's rows have a null row number, label rows a position: that tells them apart
     union = r.cte(
         f"__aj_tu{lookup.step}",
         f"SELECT {', '.join(keys)}, {r.epoch_us(n.s)} AS {n.p}, "
-        f"CAST(NULL AS BIGINT) AS {n.row}, 1 AS {n.one}"
+        f"CAST(NULL AS {r.row_type()}) AS {n.row}"
         + "".join(", " + v for v in vals)
         + "".join(f", NULL AS {c}" for c in carry)
         + f"\n    FROM {rows}\n    UNION ALL\n    SELECT {', '.join(_label_keys(r, lookup))}, "
-        f"{r.epoch_us(n.t)} - {int(shift)} AS {n.p}, {n.row}, NULL AS {n.one}"
+        f"{r.epoch_us(n.t)} - {int(shift)} AS {n.p}, {n.row}"
         + "".join(", " + v for v in null_vals)
         + "".join(f", {c}" for c in carry)
         + f"\n    FROM {n.labels}",
     )
     passed = "".join(f", {c}" for c in carry)
     windows: dict[int, str] = {}
-    aggregates = _Aggregates(r)
+    aggregates = _Aggregates(r, r.lane_bits(lookup.table), f"{n.row} IS NULL")
     exprs: list[str] = []
     outputs: list[str] = []
-    plans: list[tuple[TrailingValue, str, str, bool]] = []  # (value, x or alias, window, fused)
+    plans: list[tuple[TrailingValue, str | None, str, bool]] = []  # (value, x/alias, window, fused)
     for v in lookup.values:
         offset = v.over_us - shift - 1
         never = offset < 0  # the window closes before anything is visible
@@ -106,13 +110,14 @@ def _frame(
         if offset not in windows:
             windows[offset] = f"w{len(windows)}"
         w = windows[offset]
-        x = n.one if v.column is None else _v(r, cols, v)
+        x = None if v.column is None else _v(r, cols, v)  # None: the table's rows themselves
         fused = r.PACKS_COUNTS and not never and v.agg in ("count", "sum", "mean")
         if fused:
             aggregates.need(v, x, w)  # every count first, so they pair up in lanes
         else:
-            x, flt = r.never(x) if never else (x, "")
-            x = aggregates.add(_frame_agg(r, v, x, flt, w))
+            arg = f"CASE WHEN {n.row} IS NULL THEN 1 END" if x is None else x
+            arg, flt = r.never(arg) if never else (arg, "")
+            x = aggregates.add(_frame_agg(r, v, arg, flt, w))
         plans.append((v, x, w, fused))
     for i, (v, x, w, fused) in enumerate(plans):
         out = aggregates.fused(v, x, w) if fused else x
@@ -132,10 +137,6 @@ def _frame(
     return r.cte(f"__aj_trail{lookup.step}", body), exprs
 
 
-#: lanes of a packed count: two counts of one window share one 128-bit sum, 64 bits each
-_LANE = 1 << 64
-
-
 def _ones(x: str) -> str:
     """1 on rows where x is not null, else 0: summed over a window, a count."""
     return f"CASE WHEN {x} IS NULL THEN 0 ELSE 1 END"
@@ -146,15 +147,20 @@ class _Lanes:
 
     A count is a sum of 0/1 over a window. The window sums are the costly part (a segment
     tree per frame aggregate, a running sum per sweep column), so two counts of one window are
-    the two 64-bit lanes of one HUGEINT sum (exact: a count never reaches 2^63; in the sweep a
-    lane can dip below zero between rows but is a count again at every label row). A count
-    left alone is a plain sum. Dialects without HUGEINT (``PACKS_COUNTS = False``) get one sum
-    per count. Register every count with ``need`` before reading any with ``read``.
+    the two lanes of one packed sum, ``first * 2^bits + second``. With ``bits=32`` (a table of
+    fewer than 2^31 rows, ``SqlRenderer.lane_bits``) the pack is a BIGINT; otherwise a HUGEINT
+    of two 64-bit lanes. Exact either way: a count never exceeds the table's rows, and in the
+    sweep a lane can dip below zero between rows but is a count again at every label row. A
+    count left alone is a plain sum. Dialects without packing (``PACKS_COUNTS = False``) get
+    one sum per count. Register every count with ``need`` before reading any with ``read``.
     """
 
-    def __init__(self, r: SqlRenderer, aggregate: Callable[[Hashable, str], str]) -> None:
+    def __init__(
+        self, r: SqlRenderer, aggregate: Callable[[Hashable, str], str], bits: int = 64
+    ) -> None:
         self.r = r
         self.aggregate = aggregate  # (window, summed expression) -> column alias
+        self.bits = bits
         self._packs: list[tuple[Hashable, list[str]]] = []  # (window, 0/1 expressions)
         self._where: dict[tuple[Hashable, str], tuple[int, int]] = {}  # -> (pack, lane)
 
@@ -180,9 +186,13 @@ class _Lanes:
         w, members = self._packs[pack]
         if len(members) == 1:
             return f"CAST(coalesce({self.aggregate(w, members[0])}, 0) AS BIGINT)"
-        a, b = (f"CAST({m} AS HUGEINT)" for m in members)
-        packed = self.aggregate(w, f"{a} * {_LANE} + {b}")
-        value = f"({packed} >> 64)" if lane == 0 else f"({packed} & {_LANE - 1})"
+        bits = self.bits
+        if bits == 32:
+            a, b = members
+        else:
+            a, b = (f"CAST({m} AS HUGEINT)" for m in members)
+        packed = self.aggregate(w, f"{a} * {1 << bits} + {b}")
+        value = f"({packed} >> {bits})" if lane == 0 else f"({packed} & {(1 << bits) - 1})"
         return f"CAST(coalesce({value}, 0) AS BIGINT)"
 
 
@@ -194,10 +204,15 @@ class _Aggregates:
     lanes of packed sums (`_Lanes`), and `mean` divides the same sum that `sum` returns.
     """
 
-    def __init__(self, r: SqlRenderer) -> None:
+    def __init__(self, r: SqlRenderer, bits: int, is_row: str) -> None:
         self.r = r
+        self.is_row = is_row  # true on the table's rows, false on label rows
         self._aliases: dict[str, str] = {}  # aggregate SQL -> alias in the inner select
-        self.lanes = _Lanes(r, lambda w, summed: self.add(f"sum({summed}) OVER {w}"))
+        self.lanes = _Lanes(r, lambda w, summed: self.add(f"sum({summed}) OVER {w}"), bits)
+
+    def _ones(self, x: str | None) -> str:
+        """1 where the table's row counts (x not null; any row when x is None), else 0."""
+        return f"CASE WHEN {self.is_row} THEN 1 ELSE 0 END" if x is None else _ones(x)
 
     def add(self, aggregate: str) -> str:
         """The alias of a window aggregate, added on first use."""
@@ -205,15 +220,16 @@ class _Aggregates:
             self._aliases[aggregate] = self.r.n("g", len(self._aliases))
         return self._aliases[aggregate]
 
-    def need(self, v: TrailingValue, x: str, w: str) -> None:
+    def need(self, v: TrailingValue, x: str | None, w: str) -> None:
         """Register the counts a count or mean output reads (call for every output first)."""
         if v.agg in ("count", "mean"):
-            self.lanes.need(w, _ones(x))
+            self.lanes.need(w, self._ones(x))
 
-    def fused(self, v: TrailingValue, x: str, w: str) -> str:
+    def fused(self, v: TrailingValue, x: str | None, w: str) -> str:
         """The output expression of a count, sum or mean over window `w`."""
         if v.agg == "count":
-            return self.lanes.read(w, _ones(x))
+            return self.lanes.read(w, self._ones(x))
+        assert x is not None  # sum and mean read a column
         total = self.add(
             f"sum(CAST({x} AS BIGINT)) OVER {w}" if v.integer else f"sum({x}) OVER {w}"
         )
@@ -221,7 +237,7 @@ class _Aggregates:
             if v.integer:
                 return f"CAST(coalesce({total}, 0) AS BIGINT)"
             return f"coalesce({total}, 0)"
-        return f"CAST({total} AS DOUBLE) / nullif({self.lanes.read(w, _ones(x))}, 0)"
+        return f"CAST({total} AS DOUBLE) / nullif({self.lanes.read(w, self._ones(x))}, 0)"
 
     def selects(self) -> list[str]:
         """The inner select's aggregates."""
@@ -289,7 +305,7 @@ def _sweep(
     pad = 1 if strict else 0
     parts = [
         f"SELECT {part}, {n.ord}, {n.a} AS {n.p}, {enter_kind} AS {n.kind}, "
-        f"-1 AS {n.tag}, CAST(NULL AS BIGINT) AS {n.row}"
+        f"-1 AS {n.tag}, CAST(NULL AS {r.row_type()}) AS {n.row}"
         + "".join(", " + c for c in carry)
         + f" FROM {base}"
     ]
@@ -337,7 +353,7 @@ def _sweep(
             sums[aliases[expr]] = expr
         return r.q(aliases[expr])
 
-    lanes = _Lanes(r, lambda j, summed: running(summed, cast(int, j)))
+    lanes = _Lanes(r, lambda j, summed: running(summed, cast(int, j)), r.lane_bits(lookup.table))
 
     def ones(x: str | None) -> str:
         return "1" if x is None else _ones(x)

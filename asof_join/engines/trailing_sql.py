@@ -99,7 +99,8 @@ def _frame(
     )
     passed = "".join(f", {c}" for c in carry)
     windows: dict[int, str] = {}
-    aggregates = _Aggregates(r, r.lane_bits(lookup.table), f"{n.row} IS NULL")
+    is_row = f"{n.row} IS NULL"  # a row of the table, not a label
+    aggregates = _Aggregates(r, r.lane_bits(lookup.table), is_row)
     exprs: list[str] = []
     outputs: list[str] = []
     plans: list[tuple[TrailingValue, str | None, str, bool]] = []  # (value, x/alias, window, fused)
@@ -115,7 +116,7 @@ def _frame(
         if fused:
             aggregates.need(v, x, w)  # every count first, so they pair up in lanes
         else:
-            arg = f"CASE WHEN {n.row} IS NULL THEN 1 END" if x is None else x
+            arg = f"CASE WHEN {is_row} THEN 1 END" if x is None else x
             arg, flt = r.never(arg) if never else (arg, "")
             x = aggregates.add(_frame_agg(r, v, arg, flt, w))
         plans.append((v, x, w, fused))

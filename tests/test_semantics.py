@@ -107,16 +107,19 @@ def test_two_counts_of_a_window_share_one_packed_sum(counted: bool) -> None:
     assert_frames_match(got, oracle_build(spec, data))
 
 
+@pytest.mark.parametrize("asof", ["join", "window"])
 @pytest.mark.parametrize("far", [False, True])
-def test_integer_keys_sort_as_int32_only_when_every_row_fits(far: bool) -> None:
-    """A trailing lookup sorts BIGINT keys as INTEGER when all of the table's keys fit; a
-    label key outside that range (TRY_CAST: null) then matches nothing, as it would uncast.
-    With one table key past the range nothing is cast. Both equal the oracle."""
+def test_integer_keys_sort_as_int32_only_when_every_row_fits(far: bool, asof: str) -> None:
+    """Lookups sort and join BIGINT keys as INTEGER when all of the table's keys fit; a label
+    key outside that range (TRY_CAST: null) then matches nothing, as it would uncast. With one
+    table key past the range nothing is cast. Latest (as-of join, and the window formulation)
+    and trailing values all equal the oracle."""
     user = aj.Entity("user", keys=["user_id"])
     rows_table = aj.EventTable("rows", time="s", entities=[user])
     spec = aj.TrainingSetSpec(
         labels=aj.EventTable("labels", time="t", entities=[user]),
         features=[
+            aj.Latest(rows_table, ["v"]),
             aj.Trailing(rows_table, None, "count", over="1d", name="n"),
             aj.Trailing(rows_table, "v", "sum", over="1d", name="total"),
         ],
@@ -139,10 +142,12 @@ def test_integer_keys_sort_as_int32_only_when_every_row_fits(far: bool) -> None:
         }
     )
     data = {"labels": labels, "rows": rows}
-    built = aj.build(spec, data=data)
+    built = aj.build(spec, data=data, engine=DuckDBEngine(asof=asof))
     assert ('CAST("user_id" AS INTEGER)' in built.sql) is not far
     got = built.to_pandas()
     assert got["n"].tolist() == [1, 1, 2, 1 if far else 0, 0, 0]
+    assert got["v"].tolist()[:3] == [1.0, 2.0, 4.0]  # tied rows of key 5: the later one
+    assert got["v"].notna().tolist()[3:] == [far, False, False]
     assert_frames_match(got, oracle_build(spec, data))
 
 

@@ -153,12 +153,16 @@ class SqlRenderer:
             return self.q(POSITION)
         return "(row_number() OVER () - 1)"
 
-    def key_column(self, lookup: Lookup, index: int, column: str, *, label: bool) -> str:
-        """A lookup's key column, as INTEGER where the engine found the table's values to fit
-        (``narrow_keys``); the label side with TRY_CAST (out of range: null, matching none)."""
+    def key_column(
+        self, lookup: Lookup, index: int, column: str, *, label: bool, alias: str = ""
+    ) -> str:
+        """A lookup's key column (of relation `alias` when given), as INTEGER where the engine
+        found the table's values to fit (``narrow_keys``); the label side with TRY_CAST (out
+        of range: null, which matches no row, as the uncast value would not)."""
+        ref = f"{alias}.{self.q(column)}" if alias else self.q(column)
         if (lookup.step, index) not in self.narrow_keys:
-            return self.q(column)
-        return f"{'TRY_CAST' if label else 'CAST'}({self.q(column)} AS INTEGER)"
+            return ref
+        return f"{'TRY_CAST' if label else 'CAST'}({ref} AS INTEGER)"
 
     def row_type(self) -> str:
         """SQL type of a label's row number: INTEGER when the labels are known to number fewer
@@ -420,7 +424,10 @@ class SqlRenderer:
         names = ["__aj_s", "__aj_at", *(f"__aj_v{i}" for i in range(len(lookup.values)))]
         label_kind, row_kind = (1, 0) if lookup.inclusive else (0, 1)
         payload = self.struct_pack([(name, q(name)) for name in names])
-        label_keys = [f"{q(c)} AS {n('k', i)}" for i, c in enumerate(lookup.label_keys)]
+        label_keys = [
+            f"{self.key_column(lookup, i, c, label=True)} AS {n('k', i)}"
+            for i, c in enumerate(lookup.label_keys)
+        ]
         present = [f"{q(c)} IS NOT NULL" for c in lookup.label_keys] + [f"{n.t} IS NOT NULL"]
         union = self.cte(
             f"__aj_lu{lookup.step}",
@@ -444,13 +451,14 @@ class SqlRenderer:
     def render_LatestLookup(
         self, lookup: LatestLookup, label: str
     ) -> tuple[str, dict[tuple[str, int], str]]:
-        q, n = self.q, self.n
+        n = self.n
         rows = self.rows_cte(lookup, [v.column for v in lookup.values])
         line = self.timeline_cte(lookup, rows)
         alias = f"f{lookup.step}"
         if self.SUPPORTS_ASOF_JOIN:
             on = [
-                f"{label}.{q(lc)} = {alias}.{n('k', i)}" for i, lc in enumerate(lookup.label_keys)
+                f"{self.key_column(lookup, i, lc, label=True, alias=label)} = {alias}.{n('k', i)}"
+                for i, lc in enumerate(lookup.label_keys)
             ]
             op = ">=" if lookup.inclusive else ">"
             on.append(f"{label}.{n.t} {op} {alias}.{n.at}")

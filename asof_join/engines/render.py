@@ -164,11 +164,15 @@ class SqlRenderer:
             return ref
         return f"{'TRY_CAST' if label else 'CAST'}({ref} AS INTEGER)"
 
+    def _small(self, table: str) -> bool:
+        """The engine knows `table` holds fewer than 2^31 rows: any count of them fits 32 bits."""
+        rows = self.row_counts.get(table)
+        return rows is not None and rows < 1 << 31
+
     def row_type(self) -> str:
         """SQL type of a label's row number: INTEGER when the labels are known to number fewer
         than 2^31 (4 bytes less to carry through every sort), else BIGINT."""
-        rows = self.row_counts.get(self.plan.labels.table)
-        return "INTEGER" if rows is not None and rows < 1 << 31 else "BIGINT"
+        return "INTEGER" if self._small(self.plan.labels.table) else "BIGINT"
 
     def lane_bits(self, table: str) -> int:
         """Width of one lane of a packed count over `table`'s rows (see trailing_sql._Lanes).
@@ -177,8 +181,7 @@ class SqlRenderer:
         fewer than 2^31 rows packs two counts into one BIGINT (32-bit lanes), which DuckDB
         sums faster than the 128-bit pair of 64-bit lanes used otherwise.
         """
-        rows = self.row_counts.get(table)
-        return 32 if rows is not None and rows < 1 << 31 else 64
+        return 32 if self._small(table) else 64
 
     def last_non_null(self, expr: str) -> str:
         """The window function taking the last non-null value of the frame."""

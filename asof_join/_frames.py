@@ -117,9 +117,7 @@ def time_micros(array: pa.Array, what: str, column: str, role: str) -> tuple[np.
             f"{what} column {column!r} (its {role}) has type {typ}, not a timestamp or date; "
             "convert it (e.g. pandas.to_datetime) or point the argument at a timestamp column"
         )
-        err = TimeTypeError(msg)
-        err.table, err.column = what, column
-        raise err
+        raise TimeTypeError(msg, table=what, column=column)
     raw = array.cast(pa.int64()).fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64)
     scale = _MICROS[typ.unit]
     values = raw // 1_000 if scale is None else raw * scale
@@ -140,9 +138,7 @@ def check_local_path(name: str, path: str, *, directories: bool = False) -> None
         f"table {name!r}: cannot read {missing!r} (no such file or no match for the glob); "
         "fix the path in data= or the spec's path:"
     )
-    err = UnreadableInputError(msg)
-    err.table, err.value = name, path
-    raise err
+    raise UnreadableInputError(msg, table=name, value=path)
 
 
 def null_positions(array: pa.Array) -> np.ndarray:
@@ -167,9 +163,7 @@ def null_values_error(
         f"{what} column {column!r} (its {role}) has {len(positions)} null value(s), at rows "
         f"[{first}{more}] (0-based); {fix}"
     )
-    err = error(msg)
-    err.table, err.column, err.value = what, column, len(positions)
-    raise err
+    raise error(msg, table=what, column=column, value=len(positions))
 
 
 def instant_micros(value: object, what: str, *, aware: bool, timezone: str | None) -> int:

@@ -254,9 +254,7 @@ def _read_path(path: str) -> pa.Table:
 
     if not Path(path).is_file():
         msg = f"cannot read the training set {path!r}: no such file; check the path"
-        err = UnreadableInputError(msg)
-        err.value = path
-        raise err
+        raise UnreadableInputError(msg, value=path)
     is_csv = path.lower().endswith((".csv", ".tsv", ".txt", ".csv.gz", ".tsv.gz"))
     from .engines.duckdb import connect
 
@@ -268,9 +266,7 @@ def _read_path(path: str) -> pa.Table:
         first = str(exc).splitlines()[0]
         kind = "CSV" if is_csv else "Parquet"
         msg = f"cannot read the training set {path!r} as {kind}: {first}; check the file"
-        err = UnreadableInputError(msg)
-        err.value = path
-        raise err from None
+        raise UnreadableInputError(msg, value=path) from None
     finally:
         con.close()
     return table
@@ -519,9 +515,7 @@ class _Auditor(SourceChecks, LabelChecks):
                 "or set path: on the table in the spec"
                 + (", or build the set with provenance=True" if out.is_latest else "")
             )
-            err = UnknownTableError(msg)
-            err.table = out.table
-            raise err
+            raise UnknownTableError(msg, table=out.table)
         for i, out in enumerate(o for o in self.outputs if o.recompute):
             out.slot = i
 

@@ -120,9 +120,7 @@ def _micros_sql(duck_type: str, name: str, p: Params, zone: str | None) -> str:
             f"column {name!r} has type {duck_type}, not a timestamp or date; the audit compares "
             "it as a time: convert it (e.g. pandas.to_datetime)"
         )
-        err = TimeTypeError(msg)
-        err.column = name
-        raise err
+        raise TimeTypeError(msg, column=name)
     ref = TimeRef(
         name, kind, None if kind == TimeKind.AWARE else zone, nanos=duck_type.endswith("_NS")
     )

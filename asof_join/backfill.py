@@ -339,9 +339,7 @@ def _inputs(target: _Target, data: Mapping[str, object] | None) -> dict[str, obj
             f"no data for table(s) {missing}, which the features read: pass "
             f"data={{{missing[0]!r}: frame_or_path}}, or set path: on the table{hint}"
         )
-        err = UnknownTableError(msg)
-        err.table = missing[0]
-        raise err
+        raise UnknownTableError(msg, table=missing[0])
     return out
 
 
@@ -525,9 +523,7 @@ class _Folder:
                     f"another backfill (pid {holder}) is writing to {str(self.out)!r}; wait for "
                     "it to finish, pass wait=True to queue behind it, or write another folder"
                 )
-                err = InputError(msg)
-                err.value = holder
-                raise err from None
+                raise InputError(msg, value=holder) from None
             os.ftruncate(fd, 0)
             os.pwrite(fd, f"{os.getpid()}\n".encode(), 0)
             self._clean_stale()
@@ -611,9 +607,7 @@ class _Folder:
                     f"fingerprint {fingerprint!r}; pass overwrite=True to replace them, or "
                     "write to another folder"
                 )
-                err = InputError(msg)
-                err.value = saved.get("fingerprint")
-                raise err
+                raise InputError(msg, value=saved.get("fingerprint"))
             if saved is not None:
                 old = _Grid.from_document(saved["grid"])
                 if old.clash(grid):
@@ -800,9 +794,7 @@ class _Session:
                 f"population has {bad} row(s) with a null key in {list(self.target.keys)}; "
                 "drop them"
             )
-            err = InputError(msg)
-            err.table, err.value = "population", bad
-            raise err
+            raise InputError(msg, table="population", value=bad)
         self.con.execute(
             f'CREATE TEMP TABLE "__aj_bf_population" AS SELECT DISTINCT {keys} '
             f'FROM "__aj_bf_population_src" ORDER BY {keys}'

@@ -7,11 +7,24 @@ from collections.abc import Iterable, Sequence
 
 
 class AsofJoinError(ValueError):
-    """Base class for every error asof_join raises on bad specs or data."""
+    """Base class for every error asof_join raises on bad specs or data.
 
-    table: str | None = None
-    column: str | None = None
-    value: object = None
+    ``table``, ``column`` and ``value`` name what was wrong, for code that handles the error
+    (the message names them for people).
+    """
+
+    def __init__(
+        self,
+        message: str,
+        *,
+        table: str | None = None,
+        column: str | None = None,
+        value: object = None,
+    ) -> None:
+        super().__init__(message)
+        self.table = table
+        self.column = column
+        self.value = value
 
 
 class SpecError(AsofJoinError):
@@ -49,9 +62,7 @@ class ColumnNotFoundError(InputError):
         cols = list(available)
         hint = did_you_mean(column, cols)
         msg = f"table {table!r} has no column {column!r} (its {role}). Columns: {cols}.{hint} {fix}"
-        err = cls(msg)
-        err.table, err.column = table, column
-        return err
+        return cls(msg, table=table, column=column)
 
 
 class KeyTypeMismatchError(InputError):

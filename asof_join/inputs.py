@@ -38,9 +38,7 @@ def check_known_tables(spec: TrainingSetSpec, data: Mapping[str, object]) -> Non
             f"data= binds {unknown}, which the spec does not declare; declared tables: "
             f"{list(tables)}. Fix the name in data= or add the table to the spec"
         )
-        err = UnknownTableError(msg)
-        err.table = unknown[0]
-        raise err
+        raise UnknownTableError(msg, table=unknown[0])
 
 
 def check_bindings(spec: TrainingSetSpec, data: Mapping[str, object] | None) -> None:
@@ -54,9 +52,7 @@ def check_bindings(spec: TrainingSetSpec, data: Mapping[str, object] | None) -> 
             f"no data for table(s) {missing}: pass data={{{missing[0]!r}: frame_or_path}} to "
             "build(), or set path: on the table in the spec"
         )
-        err = UnknownTableError(msg)
-        err.table = missing[0]
-        raise err
+        raise UnknownTableError(msg, table=missing[0])
 
 
 def _time_kind(typ: pa.DataType) -> TimeKind | None:
@@ -87,9 +83,7 @@ def _time_column(schema: pa.Schema, table: str, column: str, role: str) -> TimeK
             f"table {table!r} column {column!r} (its {role}) has type {typ}, not a timestamp "
             f"or date; convert it (e.g. pandas.to_datetime) or point {role}= at a timestamp"
         )
-        err = TimeTypeError(msg)
-        err.table, err.column = table, column
-        raise err
+        raise TimeTypeError(msg, table=table, column=column)
     return kind
 
 
@@ -124,9 +118,7 @@ def check_inputs(
             f"label table {spec.labels.name!r} has column(s) {reserved}; names starting with "
             "'__aj_' are reserved for asof_join's working columns: rename them"
         )
-        err = InputError(msg)
-        err.table, err.column = spec.labels.name, reserved[0]
-        raise err
+        raise InputError(msg, table=spec.labels.name, column=reserved[0])
     for feat in spec.features:
         name = feat.table.name
         schema = schemas[name]
@@ -151,9 +143,7 @@ def check_inputs(
                     f"{ltype} but table {name!r} column {tcol!r} is {ttype}; cast one side so "
                     "both are integers or both are strings"
                 )
-                err = KeyTypeMismatchError(msg)
-                err.table, err.column = name, tcol
-                raise err
+                raise KeyTypeMismatchError(msg, table=name, column=tcol)
     outputs = spec.output_columns()
     if provenance:
         outputs = outputs + [
@@ -191,9 +181,7 @@ def check_inputs(
             f"column {nc!r} is naive; set timezone='<IANA zone>' on the spec to read naive "
             "times in that zone, or make both the same kind"
         )
-        err = TimeTypeError(msg)
-        err.table, err.column = nn, nc
-        raise err
+        raise TimeTypeError(msg, table=nn, column=nc)
     zone = spec.timezone if aware else None
 
     def ref(name: str, column: str, kind: TimeKind) -> TimeRef:

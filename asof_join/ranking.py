@@ -290,9 +290,7 @@ def _same_zone_kind(a: tuple[str, str, bool], b: tuple[str, str, bool]) -> None:
         )
         from .errors import TimeTypeError
 
-        err = TimeTypeError(msg)
-        err.table, err.column = naive[0], naive[1]
-        raise err
+        raise TimeTypeError(msg, table=naive[0], column=naive[1])
 
 
 def _no_nulls(array: pa.Array, what: str, column: str, role: str) -> None:
@@ -307,9 +305,7 @@ def _same_key_family(a: tuple[str, pa.Array], b: tuple[str, pa.Array], column: s
             f"key type mismatch: {a[0]} column {column!r} is {a[1].type} but {b[0]} column "
             f"{column!r} is {b[1].type}; cast one side so both are integers or both strings"
         )
-        err = KeyTypeMismatchError(msg)
-        err.table, err.column = b[0], column
-        raise err
+        raise KeyTypeMismatchError(msg, table=b[0], column=column)
 
 
 # --- sampling in DuckDB ---------------------------------------------------------------------

@@ -266,6 +266,29 @@ def test_reserved_label_column_name() -> None:
         _build(orders=_orders().assign(__aj_row=1))
 
 
+def test_errors_carry_table_column_and_value(tmp_path: Path) -> None:
+    """Besides the message, an error names what was wrong as attributes, for handling code."""
+    orders = _orders()
+    orders.loc[[0, 2], "ordered_at"] = pd.NaT
+    with pytest.raises(aj.NullTimeError) as null_times:
+        _build(orders=orders)
+    assert (null_times.value.table, null_times.value.column, null_times.value.value) == (
+        "orders",
+        "ordered_at",
+        2,
+    )
+    with pytest.raises(aj.KeyTypeMismatchError) as keys:
+        _build(profiles=_profiles().assign(customer_id=["10", "11"]))
+    assert keys.value.table is not None and keys.value.column == "customer_id"
+    missing = str(tmp_path / "nope.parquet")
+    with pytest.raises(aj.UnreadableInputError) as unreadable:
+        _build(profiles=missing)
+    assert (unreadable.value.table, unreadable.value.value) == ("profiles", missing)
+    with pytest.raises(aj.SpecError) as spec:
+        aj.Latest(PROFILES, ["tier"], max_age="7x")
+    assert (spec.value.table, spec.value.column, spec.value.value) == (None, None, None)
+
+
 def test_every_error_is_a_value_error() -> None:
     for cls in (aj.SpecError, aj.InputError, aj.ColumnNotFoundError, aj.NullTimeError):
         assert issubclass(cls, aj.AsofJoinError)

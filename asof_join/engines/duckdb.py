@@ -233,9 +233,7 @@ class DuckDBEngine:
             f"data for table {name!r} is a {type(obj).__name__}; pass a pandas, polars or "
             "pyarrow frame, a DuckDB relation, or a Parquet/CSV path or glob"
         )
-        err = InputError(msg)
-        err.table = name
-        raise err
+        raise InputError(msg, table=name)
 
     def _register_frame(self, name: str, view: str, table: pa.Table) -> None:
         self.con.register(view, table)
@@ -255,9 +253,7 @@ class DuckDBEngine:
                 f"table {name!r}: cannot read {path!r} as "
                 f"{'CSV' if lower.endswith(_CSV) else 'Parquet'}: {first}; check the file"
             )
-            err = UnreadableInputError(msg)
-            err.table, err.value = name, path
-            raise err from None
+            raise UnreadableInputError(msg, table=name, value=path) from None
 
     def fetch(self, sql: str, params: dict[str, object] | None = None) -> list[tuple[Any, ...]]:
         """Run a statement to completion and return its rows."""
@@ -290,9 +286,7 @@ class DuckDBEngine:
                 f"table {check.table!r} column {check.column!r} ({check.role}) has {nulls} null "
                 f"value(s), first at 0-based row(s) {first}; {fix}"
             )
-            err = NullTimeError(msg)
-            err.table, err.column, err.value = check.table, check.column, nulls
-            raise err
+            raise NullTimeError(msg, table=check.table, column=check.column, value=nulls)
 
     # -- rendering and running -------------------------------------------------------------
 

@@ -207,9 +207,7 @@ class SparkEngine:
         except Exception as exc:  # Spark raises many kinds here: name the table
             first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
             msg = f"table {name!r}: Spark cannot take this frame ({first}); check its column types"
-            err = InputError(msg)
-            err.table = name
-            raise err from None
+            raise InputError(msg, table=name) from None
         frame.createOrReplaceTempView(view)
         self.definitions[name] = (
             f"-- {self.q(view)}: a local frame bound to table {name!r} "
@@ -238,9 +236,7 @@ class SparkEngine:
                 f"table {name!r}: cannot read {path!r} as {'CSV' if is_csv else 'Parquet'} "
                 f"with Spark: {first}; {fix}"
             )
-            err = UnreadableInputError(msg)
-            err.table, err.value = name, path
-            raise err from None
+            raise UnreadableInputError(msg, table=name, value=path) from None
 
     def _parquet(self, name: str, view: str, path: str) -> DataFrame:
         """Parquet in SQL a user can re-run: positions from ``_metadata.row_index``."""
@@ -347,9 +343,7 @@ class SparkEngine:
                     f"table {check.table!r} column {check.column!r} ({check.role}) has {nulls} "
                     f"null value(s), first at 0-based row(s) {first}; {fix}"
                 )
-                err = NullTimeError(msg)
-                err.table, err.column, err.value = check.table, check.column, int(nulls)
-                raise err
+                raise NullTimeError(msg, table=check.table, column=check.column, value=int(nulls))
 
     # -- rendering and running -------------------------------------------------------------
 
@@ -489,9 +483,7 @@ def _path_order(uri: str) -> str:
 def _require_free(name: str, columns: Sequence[str]) -> None:
     if POSITION in columns:
         msg = f"table {name!r} has a column named {POSITION!r}, which asof_join uses; rename it"
-        err = InputError(msg)
-        err.table, err.column = name, POSITION
-        raise err
+        raise InputError(msg, table=name, column=POSITION)
 
 
 def _to_arrow(name: str, obj: object) -> pa.Table:
@@ -515,9 +507,7 @@ def _to_arrow(name: str, obj: object) -> pa.Table:
         f"data for table {name!r} is a {type(obj).__name__}; pass a Spark DataFrame, a table "
         "name, a Parquet/CSV path or glob, or a pandas, polars or pyarrow frame"
     )
-    err = InputError(msg)
-    err.table = name
-    raise err
+    raise InputError(msg, table=name)
 
 
 def _spark_ready(name: str, table: pa.Table) -> pa.Table:
